@@ -1,0 +1,140 @@
+"""The whole job as library calls returning DataFrames; the CLI only wires these.
+
+>>> from linker import load_config, run_pipeline          # doctest: +SKIP
+>>> result = run_pipeline(load_config("configs/sample.toml"))
+>>> result.records.head()                                  # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import pandas as pd
+
+from . import __version__
+from .config import LinkConfig
+from .errors import InputError
+from .ingest import ingest_file
+from .io import file_facts, list_delivery, read_file, write_csv, write_json
+from .records import normalize_records
+from .schema import FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
+
+Progress = Callable[[str], None]
+
+
+def stderr_progress(message: str) -> None:
+    """Progress lines for long work (counts and file names only, no personal data)."""
+    print(f"linker: {message}", file=sys.stderr, flush=True)
+
+
+def _quiet(message: str) -> None:
+    pass
+
+
+@dataclass
+class RunResult:
+    """Everything one run produced, as DataFrames plus the run summary."""
+
+    records: pd.DataFrame
+    ledger: pd.DataFrame
+    claims: pd.DataFrame
+    files: pd.DataFrame
+    columns: pd.DataFrame
+    info: dict
+    warnings: list[str] = field(default_factory=list)
+    extra: dict = field(default_factory=dict)   # frames added by later stages (pairs, entities...)
+
+
+def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
+    """Read and classify every file of the delivery.
+
+    Returns raw records, ledger, claims, files and column-mapping frames, and warnings.
+    A file that cannot be read raises :class:`InputError` unless ``skip_unreadable``
+    (default from the config), in which case it gets a ledger line and the run goes on.
+    """
+    skip = cfg.skip_unreadable if skip_unreadable is None else skip_unreadable
+    paths = list_delivery(cfg.folder, cfg.patterns, cfg.exclude)
+    if not paths:
+        raise InputError(cfg.folder, "no files in the delivery folder match "
+                                     f"{', '.join(cfg.patterns)}")
+    raws, ledgers, claims, columns, files, warnings = [], [], [], [], [], []
+    for k, path in enumerate(paths, 1):
+        facts = file_facts(path, cfg.folder)
+        progress(f"reading file {k}/{len(paths)}: {facts['source_file']}")
+        try:
+            data = read_file(path, cfg.folder)
+        except InputError as err:
+            if not skip:
+                raise
+            files.append({**facts, "sheets": 0, "encoding": "", "status": f"skipped: {err.problem}"})
+            ledgers.append(pd.DataFrame([(facts["source_file"], "", "", OUTCOME_FILE_SKIPPED,
+                                          err.problem, 0)], columns=list(LEDGER_COLUMNS)))
+            warnings.append(str(err))
+            continue
+        for res in ingest_file(cfg, data):
+            raws.append(res.records)
+            ledgers.append(res.ledger)
+            claims.append(res.claims)
+            columns.append(res.columns)
+            warnings.extend(res.warnings)
+        files.append({**facts, "sheets": len(data.sheets), "encoding": data.encoding,
+                      "status": "read"})
+    raw = pd.concat(raws, ignore_index=True) if raws else pd.DataFrame()
+    return (raw, pd.concat(ledgers, ignore_index=True), pd.concat(claims, ignore_index=True)
+            if claims else pd.DataFrame(), pd.DataFrame(files, columns=list(FILE_COLUMNS)),
+            pd.concat(columns, ignore_index=True) if columns else pd.DataFrame(), warnings)
+
+
+def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
+                 skip_unreadable: bool | None = None) -> RunResult:
+    """Run every stage on the delivery the config names and return the frames."""
+    timings = {}
+    t0 = time.perf_counter()
+    raw, ledger, claims, files, columns, warnings = ingest_delivery(cfg, progress, skip_unreadable)
+    timings["ingest_s"] = round(time.perf_counter() - t0, 3)
+    progress(f"read {len(files)} files, {len(ledger)} rows, {len(raw)} person-records")
+    t1 = time.perf_counter()
+    records = normalize_records(raw, cfg)
+    timings["normalize_s"] = round(time.perf_counter() - t1, 3)
+    progress("normalized person-records")
+    ledger = ledger.reset_index(drop=True)
+    info = {
+        "linker_version": __version__,
+        "config": Path(cfg.source).name,
+        "config_sha256": cfg.config_hash,
+        "inputs": files[["source_file", "sha256", "size_bytes"]].to_dict(orient="records"),
+        "counts": {
+            "files": int(len(files)),
+            "files_skipped": int((files["status"] != "read").sum()),
+            "input_rows": int(pd.to_numeric(ledger["row"], errors="coerce").notna().sum()),
+            "records": int(len(records)),
+            "relation_claims": int(len(claims)),
+            "ledger_outcomes": {k: int(v) for k, v in
+                                ledger["outcome"].value_counts().sort_index().items()},
+        },
+        "timings": timings,
+    }
+    return RunResult(records, ledger, claims, files, columns, info, warnings)
+
+
+def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
+    """Write the run's tables into ``out_dir`` (each file atomically)."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    written = []
+    tables = {"records.csv": result.records, "ledger.csv": result.ledger,
+              "claims.csv": result.claims, "files.csv": result.files,
+              "columns.csv": result.columns, **result.extra}
+    for name, frame in tables.items():
+        write_csv(frame, out / name)
+        written.append(out / name)
+    info = dict(result.info)
+    info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+    info["warnings"] = result.warnings
+    write_json(info, out / "run.json")
+    written.append(out / "run.json")
+    return written
