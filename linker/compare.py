@@ -1,0 +1,500 @@
+"""Comparison levels for candidate pairs.
+
+Each field comparison maps a record pair to one small integer *level*: 0 is
+always ``missing`` (either side has no value), 1 is the strongest agreement,
+and the last level is ``different``.  Levels are tested in order and the first
+that holds wins.  The result of :func:`compare` is an ``int8`` matrix with one
+row per pair and one column per field.
+
+Work is done once per distinct value pair: each field's values are factorized
+into integer codes per record, the pairs' code pairs are made symmetric
+(smaller code first) and made unique across all chunks, those unique pairs are
+scored (string similarity through :func:`rapidfuzz.process.cpdist` with
+``workers=-1``), and the levels are broadcast back to the pairs chunk by chunk,
+so memory grows with the chunk size and the number of distinct value pairs,
+not with the pair count times the field count.
+
+Field kinds and their levels (after ``missing``):
+
+``reg_no``
+    ``exact``, ``one_edit`` (optimal string alignment distance 1: one
+    substitution, insertion, deletion or adjacent swap), ``different``.  When
+    ``flag_column`` is set and present, a record whose flag is true (the row
+    shows the same number for both of its persons) counts as missing.
+``name``
+    ``exact``, ``jw_high``, [``part``], ``jw_medium``, ``swapped``,
+    ``phonetic``, ``different``.  ``part`` (only with ``parts=True``, for
+    family names) = the two names share a whole name part and one has several
+    parts ("GARCIA LOPEZ" / "GARCIA").  ``swapped`` = the value equals the other
+    side's ``swap_column`` (given <-> family) or the order-free ``key_column``
+    values are equal.  ``phonetic`` = equal ``phonetic_column`` codes.
+``date``
+    ``exact``, ``day_month_swapped``, ``one_component`` (exactly one of year,
+    month, day differs), ``within_days`` (at most ``days`` apart),
+    ``age_consistent`` / ``age_inconsistent`` (one side has no date but an
+    age-derived range ``range_columns``: the other's date, or range, falls in /
+    outside it), ``different``.
+``sex``
+    ``same``, ``different``.
+``string``
+    ``exact``, ``jw_high``, ``jw_medium``, ``different``.
+``exact``
+    ``same``, ``different``.
+
+Only person-level fields are identity evidence: event dates (intake, release)
+and places describe the case, not the person, so :data:`DEFAULT_PERSON_FIELDS`
+leaves them out.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+from rapidfuzz import process
+from rapidfuzz.distance import JaroWinkler, OSA
+
+__all__ = [
+    "FieldComparison",
+    "LEVELS",
+    "AGREEMENT",
+    "DEFAULT_PERSON_FIELDS",
+    "compare",
+    "jaro_winkler",
+    "field_to_dict",
+    "field_from_dict",
+]
+
+# level names per kind (index = level code); AGREEMENT marks levels that are agreements
+LEVELS: dict[str, tuple[str, ...]] = {
+    "reg_no": ("missing", "exact", "one_edit", "different"),
+    "name": ("missing", "exact", "jw_high", "jw_medium", "swapped", "phonetic", "different"),
+    "name_parts": ("missing", "exact", "jw_high", "part", "jw_medium", "swapped", "phonetic", "different"),
+    "date": ("missing", "exact", "day_month_swapped", "one_component", "within_days",
+             "age_consistent", "age_inconsistent", "different"),
+    "sex": ("missing", "same", "different"),
+    "string": ("missing", "exact", "jw_high", "jw_medium", "different"),
+    "exact": ("missing", "same", "different"),
+}
+DISAGREEMENT = frozenset({"missing", "different", "age_inconsistent"})
+AGREEMENT = {k: tuple(name not in DISAGREEMENT for name in v) for k, v in LEVELS.items()}
+KINDS = ("reg_no", "name", "date", "sex", "string", "exact")
+
+
+@dataclass(frozen=True)
+class FieldComparison:
+    """How one field of two records is compared.
+
+    Parameters
+    ----------
+    name : str
+        Field label (column of the level matrix, key of model parameters).
+    kind : {"reg_no", "name", "date", "sex", "string", "exact"}
+    columns : tuple of str
+        Value column(s); the first is the value compared (and the value whose
+        frequency the model's term-frequency adjustment uses).
+    high, medium : float
+        Jaro-Winkler thresholds for ``jw_high`` / ``jw_medium``.
+    days : int
+        Largest gap in days for the date level ``within_days``.
+    swap_column, key_column, phonetic_column : str, optional
+        ``name`` kind: column holding the other name part, the order-free name
+        key, and the phonetic code.
+    parts : bool
+        ``name`` kind: add the ``part`` level (double family names).
+    range_columns : tuple of str, optional
+        ``date`` kind: (earliest, latest) birth date consistent with a stated age.
+    flag_column : str, optional
+        ``reg_no`` kind: boolean column; a true flag makes the value count as missing.
+    """
+
+    name: str
+    kind: str
+    columns: tuple[str, ...]
+    high: float = 0.92
+    medium: float = 0.80
+    days: int = 31
+    swap_column: str | None = None
+    key_column: str | None = None
+    phonetic_column: str | None = None
+    parts: bool = False
+    range_columns: tuple[str, ...] | None = None
+    flag_column: str | None = None
+
+    def __post_init__(self):
+        if isinstance(self.columns, str):
+            object.__setattr__(self, "columns", (self.columns,))
+        else:
+            object.__setattr__(self, "columns", tuple(self.columns))
+        if self.range_columns is not None:
+            object.__setattr__(self, "range_columns", tuple(self.range_columns))
+        if self.kind not in KINDS:
+            raise ValueError(f"FieldComparison {self.name!r}: kind must be one of {KINDS}, got {self.kind!r}")
+        if len(self.columns) != 1:
+            raise ValueError(f"FieldComparison {self.name!r}: columns must name one value column, "
+                             f"got {self.columns!r}")
+        if not 0.0 <= self.medium <= self.high <= 1.0:
+            raise ValueError(f"FieldComparison {self.name!r}: need 0 <= medium <= high <= 1, "
+                             f"got medium={self.medium}, high={self.high}")
+        if self.days < 0:
+            raise ValueError(f"FieldComparison {self.name!r}: days must be >= 0, got {self.days}")
+        if self.range_columns is not None and len(self.range_columns) != 2:
+            raise ValueError(f"FieldComparison {self.name!r}: range_columns must be (earliest, latest), "
+                             f"got {self.range_columns!r}")
+
+    @property
+    def level_kind(self) -> str:
+        return "name_parts" if (self.kind == "name" and self.parts) else self.kind
+
+    @property
+    def levels(self) -> tuple[str, ...]:
+        """Level names, index = level code."""
+        return LEVELS[self.level_kind]
+
+    @property
+    def agreement(self) -> tuple[bool, ...]:
+        """Per level: is it an agreement (as opposed to missing / a disagreement)."""
+        return AGREEMENT[self.level_kind]
+
+    def level(self, name: str) -> int:
+        """Code of the level called ``name``."""
+        if name not in self.levels:
+            raise ValueError(f"field {self.name!r} ({self.kind}) has no level {name!r}; levels: {self.levels}")
+        return self.levels.index(name)
+
+    def required_columns(self) -> tuple[str, ...]:
+        """Columns that must be present (optional flag column excluded)."""
+        cols = list(self.columns)
+        for c in (self.swap_column, self.key_column, self.phonetic_column):
+            if c:
+                cols.append(c)
+        if self.range_columns:
+            cols += list(self.range_columns)
+        return tuple(cols)
+
+
+def field_to_dict(f: FieldComparison) -> dict:
+    """Plain dict of a field comparison (JSON-ready)."""
+    d = asdict(f)
+    d["columns"] = list(f.columns)
+    d["range_columns"] = list(f.range_columns) if f.range_columns else None
+    return d
+
+
+def field_from_dict(d: dict) -> FieldComparison:
+    """Inverse of :func:`field_to_dict`."""
+    d = dict(d)
+    d["columns"] = tuple(d["columns"])
+    if d.get("range_columns") is not None:
+        d["range_columns"] = tuple(d["range_columns"])
+    return FieldComparison(**d)
+
+
+# The person-record comparison set: identity evidence only (no event dates or places).
+DEFAULT_PERSON_FIELDS = (
+    FieldComparison("reg_no", "reg_no", ("reg_no",), flag_column="reg_no_shared"),
+    FieldComparison("given_name", "name", ("given_name",), swap_column="family_name",
+                    key_column="name_key", phonetic_column="given_soundex"),
+    FieldComparison("family_name", "name", ("family_name",), swap_column="given_name",
+                    key_column="name_key", phonetic_column="family_soundex", parts=True),
+    FieldComparison("birth_date", "date", ("birth_date",), range_columns=("birth_date_min", "birth_date_max")),
+    FieldComparison("sex", "sex", ("sex",)),
+)
+
+
+# ---------------------------------------------------------------------------
+# similarity
+# ---------------------------------------------------------------------------
+
+def jaro_winkler(a, b) -> np.ndarray:
+    """Jaro-Winkler similarity of aligned string arrays (prefix weight 0.1, up to 4 letters).
+
+    rapidfuzz's batch function over the pairs, all cores; float64 so that
+    thresholds are applied to exact values.
+    """
+    a = np.asarray(a, dtype=object)
+    b = np.asarray(b, dtype=object)
+    if a.size == 0:
+        return np.zeros(0, dtype=np.float64)
+    return process.cpdist(a, b, scorer=JaroWinkler.normalized_similarity, workers=-1, dtype=np.float64)
+
+
+def _osa(a, b) -> np.ndarray:
+    a = np.asarray(a, dtype=object)
+    b = np.asarray(b, dtype=object)
+    if a.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    return process.cpdist(a, b, scorer=OSA.distance, workers=-1, dtype=np.int32).astype(np.int64)
+
+
+# ---------------------------------------------------------------------------
+# per-field value tables: record -> value code, code -> attributes
+# ---------------------------------------------------------------------------
+
+def _text(records: pd.DataFrame, col: str) -> np.ndarray:
+    """Column as an object array of stripped strings, "" for missing."""
+    s = records[col].reset_index(drop=True)
+    na = s.isna().to_numpy()
+    out = s.astype(object).where(~na, "").astype(str).str.strip().to_numpy(dtype=object)
+    return out
+
+
+def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
+    n = len(records)
+    if not col or col not in records.columns:
+        return np.zeros(n, dtype=bool)
+    s = records[col].reset_index(drop=True)
+    if s.dtype == bool:
+        return s.to_numpy()
+    txt = s.astype(object).where(s.notna(), "").astype(str).str.strip().str.lower()
+    return txt.isin(["true", "1", "yes", "y", "t"]).to_numpy()
+
+
+def _tuple_codes(parts: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Factorize rows of several aligned object arrays; returns (codes, first row of each code)."""
+    frame = pd.DataFrame({i: p for i, p in enumerate(parts)})
+    codes = frame.groupby(list(frame.columns), sort=False, dropna=False).ngroup().to_numpy(dtype=np.int64)
+    _, first = np.unique(codes, return_index=True)
+    return codes, first
+
+
+class _Table:
+    """Distinct values of one field: per-record code (-1 = missing) and per-code attributes."""
+
+    def __init__(self, codes: np.ndarray, attrs: dict[str, np.ndarray]):
+        self.codes = codes
+        self.attrs = attrs
+
+
+def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
+    kind = f.kind
+    value = _text(records, f.columns[0])
+    if kind == "reg_no":
+        value = np.where(_flag(records, f.flag_column), "", value).astype(object)
+    if kind == "name":
+        extra = [_text(records, c) if c else np.full(len(records), "", dtype=object)
+                 for c in (f.swap_column, f.key_column, f.phonetic_column)]
+        codes, first = _tuple_codes([value] + extra)
+        vals = [p[first] for p in [value] + extra]
+        codes = np.where(value == "", -1, codes)
+        return _Table(codes, {"value": vals[0], "other": vals[1], "key": vals[2], "phon": vals[3]})
+    if kind == "date":
+        lo = _text(records, f.range_columns[0]) if f.range_columns else np.full(len(records), "", dtype=object)
+        hi = _text(records, f.range_columns[1]) if f.range_columns else np.full(len(records), "", dtype=object)
+        codes, first = _tuple_codes([value, lo, hi])
+        d, a, b = value[first], lo[first], hi[first]
+        attrs = _date_attrs(d, a, b)
+        missing_code = ~attrs["has_date"] & ~attrs["has_range"]
+        codes = np.where(missing_code[codes], -1, codes)
+        return _Table(codes, attrs)
+    # single-value kinds
+    codes, uniques = pd.factorize(pd.Series(value, dtype=object))
+    codes = codes.astype(np.int64)
+    uniques = np.asarray(uniques, dtype=object)
+    empty = np.flatnonzero(uniques == "")
+    if empty.size:
+        codes = np.where(codes == empty[0], -1, codes)
+    return _Table(codes, {"value": uniques})
+
+
+def _day_number(text: np.ndarray) -> np.ndarray:
+    """ISO date strings to day numbers (float, NaN when not a valid date)."""
+    dt = pd.to_datetime(pd.Series(text, dtype=object), format="%Y-%m-%d", errors="coerce")
+    days = (dt - pd.Timestamp("1970-01-01")).dt.days
+    return days.to_numpy(dtype=np.float64, na_value=np.nan)
+
+
+def _date_attrs(d: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> dict[str, np.ndarray]:
+    day = _day_number(d)
+    has_date = ~np.isnan(day)
+    ymd = pd.Series(d, dtype=object).str.extract(r"^(\d{4})-(\d{2})-(\d{2})$")
+    ymd = ymd.astype(float).to_numpy()
+    ymd[~has_date] = np.nan
+    rlo, rhi = _day_number(lo), _day_number(hi)
+    has_range = ~np.isnan(rlo) & ~np.isnan(rhi)
+    return {"day": day, "y": ymd[:, 0], "m": ymd[:, 1], "d": ymd[:, 2], "has_date": has_date,
+            "rlo": rlo, "rhi": rhi, "has_range": has_range}
+
+
+# ---------------------------------------------------------------------------
+# scoring distinct code pairs (a <= b, both >= 0)
+# ---------------------------------------------------------------------------
+
+def _first_true(conditions: list[np.ndarray], n: int, last: int) -> np.ndarray:
+    """Level = 1 + index of the first true condition, else ``last``."""
+    out = np.full(n, last, dtype=np.int8)
+    done = np.zeros(n, dtype=bool)
+    for k, cond in enumerate(conditions):
+        take = cond & ~done
+        out[take] = k + 1
+        done |= take
+    return out
+
+
+def _score_reg_no(t: _Table, f, a, b):
+    va, vb = t.attrs["value"][a], t.attrs["value"][b]
+    exact = a == b
+    near = _osa(va, vb) <= 1
+    return _first_true([exact, near], a.size, 3)
+
+
+def _score_string(t: _Table, f, a, b):
+    va, vb = t.attrs["value"][a], t.attrs["value"][b]
+    jw = jaro_winkler(va, vb)
+    return _first_true([a == b, jw >= f.high, jw >= f.medium], a.size, 4)
+
+
+def _score_exact(t: _Table, f, a, b):
+    return _first_true([a == b], a.size, 2)
+
+
+def _token_codes(values: np.ndarray, max_tokens: int = 6) -> tuple[np.ndarray, np.ndarray]:
+    """Per value: a (n, T) matrix of token codes (-1 = no token) and the token count."""
+    tokens = pd.Series(values, dtype=object).str.split()
+    counts = tokens.str.len().fillna(0).to_numpy(dtype=np.int64)
+    flat = tokens.explode()
+    owner = flat.index.to_numpy()
+    valid = flat.notna().to_numpy()
+    codes = pd.factorize(flat.where(flat.notna(), None))[0]
+    pos = flat.groupby(level=0).cumcount().to_numpy()
+    mat = np.full((values.size, max_tokens), -1, dtype=np.int64)
+    keep = valid & (pos < max_tokens)
+    mat[owner[keep], pos[keep]] = codes[keep]
+    return mat, counts
+
+
+def _score_name(t: _Table, f, a, b):
+    at = t.attrs
+    va, vb = at["value"][a], at["value"][b]
+    exact = va == vb
+    jw = jaro_winkler(va, vb)
+    conds = [exact, jw >= f.high]
+    if f.parts:
+        part = np.zeros(a.size, dtype=bool)
+        if "tokens" not in at:
+            at["tokens"], at["ntok"] = _token_codes(at["value"])
+        multi = (at["ntok"][a] > 1) | (at["ntok"][b] > 1)
+        idx = np.flatnonzero(multi)
+        if idx.size:
+            ta, tb = at["tokens"][a[idx]], at["tokens"][b[idx]]
+            share = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
+            part[idx] = share
+        conds.append(part)
+    conds.append(jw >= f.medium)
+    oa, ob = at["other"][a], at["other"][b]
+    ka, kb = at["key"][a], at["key"][b]
+    swapped = ((va == ob) & (ob != "")) | ((oa == vb) & (oa != "")) | ((ka == kb) & (ka != ""))
+    conds.append(swapped)
+    pa, pb = at["phon"][a], at["phon"][b]
+    conds.append((pa == pb) & (pa != ""))
+    return _first_true(conds, a.size, len(f.levels) - 1)
+
+
+def _score_date(t: _Table, f, a, b):
+    at = t.attrs
+    ha, hb = at["has_date"][a], at["has_date"][b]
+    both = ha & hb
+    ya, ma, da = at["y"][a], at["m"][a], at["d"][a]
+    yb, mb, db = at["y"][b], at["m"][b], at["d"][b]
+    exact = both & (at["day"][a] == at["day"][b])
+    swap = both & (ya == yb) & (ma == db) & (da == mb) & (ma != da)
+    same = (ya == yb).astype(int) + (ma == mb).astype(int) + (da == db).astype(int)
+    one = both & (same == 2)
+    within = both & (np.abs(at["day"][a] - at["day"][b]) <= f.days)
+    # one side without a date but with an age range
+    ra, rb = at["has_range"][a], at["has_range"][b]
+    in_a = hb & ~ha & ra & (at["day"][b] >= at["rlo"][a]) & (at["day"][b] <= at["rhi"][a])
+    in_b = ha & ~hb & rb & (at["day"][a] >= at["rlo"][b]) & (at["day"][a] <= at["rhi"][b])
+    overlap = ~ha & ~hb & ra & rb & (at["rlo"][a] <= at["rhi"][b]) & (at["rlo"][b] <= at["rhi"][a])
+    ranged = ~both  # codes >= 0, so each side has a date or a range
+    consistent = ranged & (in_a | in_b | overlap)
+    inconsistent = ranged & ~consistent
+    return _first_true([exact, swap, one, within, consistent, inconsistent], a.size, 7)
+
+
+_SCORERS = {"reg_no": _score_reg_no, "name": _score_name, "date": _score_date,
+            "sex": _score_exact, "string": _score_string, "exact": _score_exact}
+
+
+# ---------------------------------------------------------------------------
+# public
+# ---------------------------------------------------------------------------
+
+def _pair_arrays(pairs) -> tuple[np.ndarray, np.ndarray]:
+    if isinstance(pairs, pd.DataFrame):
+        return pairs["left"].to_numpy(dtype=np.int64), pairs["right"].to_numpy(dtype=np.int64)
+    left, right = pairs
+    return np.asarray(left, dtype=np.int64), np.asarray(right, dtype=np.int64)
+
+
+def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DEFAULT_PERSON_FIELDS,
+            *, chunk_size: int = 1_000_000) -> np.ndarray:
+    """Comparison level matrix for candidate pairs.
+
+    Parameters
+    ----------
+    records : DataFrame
+        Normalized records holding every column the fields name (an absent
+        ``flag_column`` counts as all false).  Addressed by position.
+    pairs : DataFrame with ``left``/``right`` or a (left, right) tuple of arrays
+        Integer positions into ``records``.
+    fields : sequence of FieldComparison
+    chunk_size : int
+        Pairs handled at a time.
+
+    Returns
+    -------
+    ndarray of int8, shape (n_pairs, n_fields); level 0 = missing.
+    """
+    fields = list(fields)
+    names = [f.name for f in fields]
+    if len(set(names)) != len(names):
+        raise ValueError(f"compare: field names must be unique, got {names}")
+    need = sorted({c for f in fields for c in f.required_columns()} - set(records.columns))
+    if need:
+        raise ValueError(f"compare: records lack column(s) {need} named by the field comparisons")
+    left, right = _pair_arrays(pairs)
+    n_pairs = left.size
+    n = len(records)
+    if n_pairs and (min(left.min(), right.min()) < 0 or max(left.max(), right.max()) >= n):
+        raise ValueError(f"compare: pair positions must lie in 0..{n - 1}")
+    out = np.zeros((n_pairs, len(fields)), dtype=np.int8)
+    step = max(int(chunk_size), 1)
+    for j, f in enumerate(fields):
+        table = _prepare(records, f)
+        codes = table.codes
+        width = np.int64(max(int(codes.max()) + 1, 1)) if codes.size else np.int64(1)
+
+        def chunk_keys(s):
+            ca, cb = codes[left[s:s + step]], codes[right[s:s + step]]
+            lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
+            key = lo * width + hi
+            key[lo < 0] = -1
+            return key
+
+        # pass 1: the distinct value pairs over all chunks
+        uniq = np.zeros(0, dtype=np.int64)
+        for s in range(0, n_pairs, step):
+            k = np.unique(chunk_keys(s))
+            uniq = np.union1d(uniq, k[k >= 0])
+        # score each distinct value pair once
+        levels = _SCORERS[f.kind](table, f, uniq // width, uniq % width) if uniq.size \
+            else np.zeros(0, dtype=np.int8)
+        # pass 2: broadcast back
+        for s in range(0, n_pairs, step):
+            k = chunk_keys(s)
+            lv = np.zeros(k.size, dtype=np.int8)
+            ok = k >= 0
+            lv[ok] = levels[np.searchsorted(uniq, k[ok])]
+            out[s:s + step, j] = lv
+    return out
+
+
+def level_frame(levels: np.ndarray, fields: Sequence[FieldComparison]) -> pd.DataFrame:
+    """The level matrix as a frame of level names (for reading, not for hot paths)."""
+    cols = {}
+    for j, f in enumerate(fields):
+        cols[f.name] = pd.Categorical.from_codes(levels[:, j].astype(np.int64), categories=list(f.levels))
+    return pd.DataFrame(cols)
