@@ -257,6 +257,10 @@ def ingest_sheet(cfg: LinkConfig, source_file: str, sheet: SheetData) -> SheetRe
         if same >= max(2, (n_header_cells + 1) // 2):
             led(rownum, OUTCOME_SKIPPED, "repeated header row")
             continue
+        first = next(x for x in t if x)
+        if fold_text(first).startswith(("TOTAL", "SUBTOTAL", "GRAND TOTAL")):
+            led(rownum, OUTCOME_SKIPPED, "total row")
+            continue
         row_slot = None
         if slot_col is not None:
             value = t[slot_col]

@@ -1,0 +1,1561 @@
+#!/usr/bin/env python3
+"""Seeded generator of the fictional Northern March demo delivery and its ground truth.
+
+Everything written here is invented: the Northern March, its agencies (the
+Northern March Holding Authority, the Office for Minors in Care, the Family
+Tracing Desk, a legal-aid clinic, a court monitor), its places, its people and
+the "holding register number" scheme (7 payload digits + a Luhn check digit).
+
+``python sample/generate.py`` rewrites ``sample/delivery``, ``sample/roster``
+and ``sample/truth`` byte for byte.  :func:`write_delivery` writes the same
+kind of delivery anywhere, in the demo vocabulary (the headers
+``configs/sample.toml`` lists) or in an ``alternate`` vocabulary that the demo
+config does not know, together with a matching ``alternate.toml``.
+
+The people, the rows and the injected defects depend only on ``seed`` and
+``n_families``; the vocabulary only changes header names, file names, sheet
+titles and the member-type values of the tracing file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import datetime as dt
+import io
+import json
+import re
+import shutil
+import unicodedata
+import zipfile
+from collections import Counter
+from dataclasses import dataclass, field
+from pathlib import Path
+import random
+
+import openpyxl
+
+SEED = 20260315
+N_FAMILIES = 350
+HERE = Path(__file__).resolve().parent
+
+FIXED_TIME = dt.datetime(2026, 11, 1, 0, 0, 0)          # workbook created/modified stamps
+ZIP_TIME = (2026, 11, 1, 0, 0, 0)                        # zip member timestamps
+FIRST_INTAKE = dt.date(2025, 6, 1)
+LAST_INTAKE = dt.date(2026, 8, 31)
+LAST_EVENT = dt.date(2026, 10, 25)                       # events stay before the cutoff (2026-10-31)
+EXCEL_EPOCH = dt.date(1899, 12, 30)                      # 1900 system, valid from 1900-03-01
+
+STATIONS = ["Quarry Gate", "Linden Ford", "Port Emberly", "Saltreach", "Vell Crossing"]
+SHELTERS = ["Alder House", "Bramble Court", "Cinder Lane Home", "Driftwood Lodge", "Eastmere House"]
+EMPTY_SHELTER = "Fenwick (closed)"
+MONTHS = ["Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"]
+
+# ---------------------------------------------------------------------------
+# Name pools (invented people are built from these; the combinations are random)
+# ---------------------------------------------------------------------------
+ORIGINS = {
+    "hispanic": dict(
+        weight=24, double=0.45, particle_share=0.12,
+        F=["María", "María José", "Lucía", "Sofía", "Inés", "Begoña", "Mónica", "Ana Belén", "Ximena",
+           "Valentina", "Camila", "Guadalupe", "Rocío", "Ángela", "Marisol", "Itzel", "Yésica"],
+        M=["José", "José Luis", "Juan Carlos", "Andrés", "Raúl", "Joaquín", "Iñaki", "Ángel", "Héctor",
+           "Óscar", "Matías", "Tomás", "Rubén", "Jesús", "Martín", "Efraín", "Nicolás"],
+        family=["García", "López", "Martínez", "Núñez", "Ibáñez", "Hernández", "Pérez", "González",
+                "Rodríguez", "Muñoz", "Jiménez", "Gómez", "Díaz", "Ramírez", "Sánchez", "Castañeda",
+                "Peña", "Ordóñez", "Quiñones", "Báez", "Suárez", "Vázquez", "Fernández", "Álvarez",
+                "Domínguez", "Cortés", "Montaño"],
+        particle=["de la Cruz", "del Río", "de León", "de los Santos", "de la Peña"]),
+    "lusophone": dict(
+        weight=8, double=0.25, particle_share=0.35,
+        F=["Conceição", "Graça", "Luísa", "Beatriz", "Fernanda", "Joana", "Márcia", "Lúcia"],
+        M=["João", "António", "Sebastião", "Luís", "Gonçalo", "Caio", "Vinícius", "Otávio"],
+        family=["Gonçalves", "Magalhães", "Simões", "Araújo", "Brandão", "Lobato", "Figueira", "Assunção"],
+        particle=["da Silva", "dos Santos", "da Costa", "do Nascimento", "da Rocha"]),
+    "west_african": dict(
+        weight=16, double=0.08, particle_share=0.0, double_sep="-",
+        F=["Ngozi", "Adaeze", "Ifeoma", "Chiamaka", "Amara", "Abena", "Ama", "Esi", "Fatoumata",
+           "Aïssata", "Mariam", "Oluwaseun", "Folasade", "Yetunde", "Adjoa"],
+        M=["Oluwaseun", "Chidi", "Emeka", "Tunde", "Kwame", "Kofi", "Yaw", "Mamadou", "Ibrahima",
+           "Amadou", "Oumar", "Seydou", "Moussa", "Babatunde", "Chinedu", "Kwabena"],
+        family=["Okafor", "Adeyemi", "Okonkwo", "Balogun", "Eze", "Nwosu", "Mensah", "Owusu", "Boateng",
+                "Asante", "Diallo", "Traoré", "Keïta", "Coulibaly", "Ndiaye", "Sow", "Bello", "Adébáyọ̀"],
+        particle=[]),
+    "vietnamese": dict(
+        weight=10, double=0.0, particle_share=0.0,
+        F=["Thi Lan", "Thị Hoa", "Ngọc Anh", "Mai", "Thu Hà", "Hương", "Thảo", "Kim Liên"],
+        M=["Văn Minh", "Quốc Bảo", "Đức Anh", "Minh", "Thanh", "Dũng", "Tuấn", "Hoàng Nam"],
+        family=["Nguyễn", "Trần", "Lê", "Phạm", "Hoàng", "Vũ", "Đặng", "Bùi", "Đỗ"],
+        particle=[]),
+    "francophone": dict(
+        weight=9, double=0.05, particle_share=0.15, double_sep="-",
+        F=["Hélène", "Anaïs", "Chloé", "Mégane", "Nadège", "Guerline", "Marie-Ange", "Rosemène"],
+        M=["François", "Gaël", "Noé", "Jérôme", "Wilnès", "Frantz", "Jean-Baptiste", "Loïc"],
+        family=["Lefèvre", "Joseph", "Pierre-Louis", "Saint-Fleur", "Désir", "Thélus", "Brézault",
+                "Chérestal"],
+        particle=["de la Fontaine", "du Pré", "de Saint-Aubin"]),
+    "dutch": dict(
+        weight=5, double=0.0, particle_share=0.6,
+        F=["Sanne", "Anouk", "Femke", "Maaike", "Eline"],
+        M=["Joris", "Bram", "Sjoerd", "Maarten", "Thijs"],
+        family=["Verhoeven", "Bakker", "Smit", "Mulder"],
+        particle=["van der Berg", "van Dijk", "de Vries", "ter Horst", "van den Heuvel"]),
+    "turkish": dict(
+        weight=8, double=0.0, particle_share=0.0,
+        F=["Ayşe", "Elif", "Zeynep", "Şebnem", "Gül", "Hülya", "Özlem"],
+        M=["Mehmet", "Gökhan", "Emre", "Barış", "Yusuf", "Çağlar", "İsmail"],
+        family=["Yılmaz", "Öztürk", "Şahin", "Demir", "Çelik", "Kılıç", "Aydın", "Doğan"],
+        particle=[]),
+    "polish": dict(
+        weight=6, double=0.05, particle_share=0.0, double_sep="-",
+        F=["Małgorzata", "Zofia", "Łucja", "Agnieszka", "Katarzyna", "Jadwiga"],
+        M=["Wojciech", "Łukasz", "Paweł", "Jakub", "Bartłomiej", "Grzegorz"],
+        family=["Wójcik", "Kowalczyk", "Kamiński", "Wiśniewski", "Zieliński", "Dąbrowski", "Nowak"],
+        particle=[]),
+    "arabic": dict(
+        weight=9, double=0.0, particle_share=0.0,
+        F=["Nour", "Rania", "Layla", "Hana", "Yasmin", "Dalia", "Fátima", "Rüya"],
+        M=["Omar", "Karim", "Samir", "Yusuf", "Khalil", "Tariq", "Anas", "Bilal"],
+        family=["Haddad", "Khoury", "Mansour", "Al-Amin", "El-Sayed", "Nasser", "Saleh", "Azzam"],
+        particle=[]),
+    "anglophone": dict(
+        weight=5, double=0.0, particle_share=0.0,
+        F=["Grace", "Emily", "Chloe", "Hannah", "Zoë", "Siobhán"],
+        M=["Liam", "Noah", "Connor", "Seán", "Declan"],
+        family=["O'Brien", "O'Connor", "McKenna", "Byrne", "Walsh", "Ó Súilleabháin"],
+        particle=[]),
+}
+ORIGIN_NAMES = list(ORIGINS)
+
+# ---------------------------------------------------------------------------
+# Header vocabularies.  "demo" entries all fold to names listed in
+# configs/sample.toml; "alternate" entries fold to none of them.
+# ---------------------------------------------------------------------------
+VOCAB = {
+    "demo": {
+        "child": {
+            "reg_no": ["Child Reg No", "Child HR Number", "Minor Reg", "Child Register No"],
+            "given_name": ["Child First Name", "Child Given Name", "Minor First Name"],
+            "family_name": ["Child Last Name", "Child Family Name", "Minor Surname"],
+            "full_name": ["Child Name", "Child Full Name", "Minor Name"],
+            "birth_date": ["Child DOB", "Child Date of Birth", "Minor DOB"],
+            "age": ["Child Age", "Age of Minor"],
+            "sex": ["Child Sex", "Child Gender", "Minor Sex"],
+        },
+        "parent": {
+            "reg_no": ["Parent Reg No", "Guardian Reg", "Adult HR Number", "Parent Register No"],
+            "given_name": ["Parent First Name", "Guardian First Name", "Adult Given Name"],
+            "family_name": ["Parent Last Name", "Guardian Surname", "Adult Family Name"],
+            "full_name": ["Parent Name", "Guardian Name", "Adult Full Name"],
+            "birth_date": ["Parent DOB", "Guardian DOB", "Adult Date of Birth"],
+            "age": ["Parent Age", "Adult Age"],
+            "sex": ["Parent Sex", "Guardian Sex", "Adult Gender"],
+        },
+        "fields": {
+            "reg_no": ["Reg No", "HR Number", "Register No", "Registration Number", "Reg #"],
+            "given_name": ["First Name", "Given Name", "Given names"],
+            "family_name": ["Last Name", "Surname", "Family Name"],
+            "full_name": ["Name", "Full Name"],
+            "birth_date": ["DOB", "Date of birth", "Birth Date"],
+            "age": ["Age"],
+            "sex": ["Sex", "Gender"],
+            "intake_date": ["Intake date", "Date of intake", "Arrival date"],
+            "placement_date": ["Placement date", "Date placed"],
+            "release_date": ["Release date", "Reunification date", "Date released"],
+            "location": ["Location", "Facility", "Station", "Shelter"],
+            "status": ["Status", "Case status"],
+        },
+        "unmapped": {
+            "remarks": "Officer remarks", "caseworker": "Caseworker", "case_id": "Case ID",
+            "clinic_file": "Clinic file", "children_named": "Children named",
+            "interpreter": "Interpreter", "escort": "Escort", "released_to": "Released to",
+        },
+        "slot_column": "Member Type",
+        "member_values": {"child": ["Child", "Minor"], "parent": ["Parent", "Adult"],
+                          "guardian": ["Guardian"]},
+        "roster": {"reg_no": "Register number", "family_name": "Family name",
+                   "given_name": "Given name", "birth_date": "Date of birth", "sex": "Sex"},
+        "roster_sheet": "Class list",
+        "files": {
+            "custody": "nmha/nmha_custody_log_2026.xlsx",
+            "omc": "omc_placements_2026.xlsx",
+            "tracing": "family_tracing_2026.csv",
+            "legal": "legal_aid_intake_2026.xlsx",
+            "transfers:h1": "stations/station_transfers_2026_h1.csv",
+            "transfers:h2": "stations/station_transfers_2026_h2.csv",
+            "releases": "nmha/nmha_releases_2026.xlsx",
+        },
+        "roster_file": "class_list.xlsx",
+    },
+    "alternate": {
+        "child": {
+            "reg_no": ["Kid Holding ID", "Juvenile File Number", "Youngster ID", "Kid Holding Ref"],
+            "given_name": ["Kid Given Name", "Juvenile Forename", "Youngster Forename"],
+            "family_name": ["Kid Family Part", "Juvenile Second Name", "Youngster Family Part"],
+            "full_name": ["Kid Whole Name", "Juvenile Names", "Youngster Called"],
+            "birth_date": ["Kid Date Born", "Juvenile Born On", "Youngster Birthday"],
+            "age": ["Kid Years", "Juvenile Age Now"],
+            "sex": ["Kid M/F", "Juvenile Sex Code", "Youngster M/F"],
+        },
+        "parent": {
+            "reg_no": ["Carer ID", "Caregiver Holding ID", "Accompanying Adult ID", "Carer Holding Ref"],
+            "given_name": ["Carer Forename", "Caregiver Given", "Accompanying Adult Forename"],
+            "family_name": ["Carer Family Part", "Caregiver Second Name", "Accompanying Adult Family Part"],
+            "full_name": ["Carer Whole Name", "Caregiver Names", "Accompanying Adult Called"],
+            "birth_date": ["Carer Date Born", "Caregiver Born On", "Accompanying Adult Birthday"],
+            "age": ["Carer Years", "Caregiver Age Now"],
+            "sex": ["Carer M/F", "Caregiver Sex Code", "Accompanying Adult M/F"],
+        },
+        "fields": {
+            "reg_no": ["Holding ID", "ID Ref", "File Ref", "Holding Ref", "Holding ID Nbr"],
+            "given_name": ["Forename", "Forenames", "Christian Name"],
+            "family_name": ["Second Name", "Family Part", "Household Name"],
+            "full_name": ["Whole Name", "Person Called"],
+            "birth_date": ["Date Born", "Born On", "Birthday"],
+            "age": ["Years Old"],
+            "sex": ["M/F", "Sex Code"],
+            "intake_date": ["Entered Custody", "Booked In", "Date Booked"],
+            "placement_date": ["Date Housed", "Housed On"],
+            "release_date": ["Let Out On", "Date Reunited", "Date Freed"],
+            "location": ["Site", "Border Post", "Post", "Care Home"],
+            "status": ["Progress", "State of Case"],
+        },
+        "unmapped": {
+            "remarks": "Duty notes", "caseworker": "Key worker", "case_id": "Family file",
+            "clinic_file": "Clinic ref", "children_named": "Dependants mentioned",
+            "interpreter": "Language help", "escort": "Escorted by", "released_to": "Handed to",
+        },
+        "slot_column": "Person Kind",
+        "member_values": {"child": ["Kid", "Youngster"], "parent": ["Carer", "Caregiver"],
+                          "guardian": ["Kin carer"]},
+        "roster": {"reg_no": "Listed Holding ID", "family_name": "Listed Family Part",
+                   "given_name": "Listed Forename", "birth_date": "Listed Date Born",
+                   "sex": "Listed M/F"},
+        "roster_sheet": "Members",
+        "files": {
+            "custody": "holding/holding_book_2026.xlsx",
+            "omc": "minors_office_placements_2026.xlsx",
+            "tracing": "tracing_desk_2026.csv",
+            "legal": "clinic_parents_2026.xlsx",
+            "transfers:h1": "posts/post_manifest_2026_h1.csv",
+            "transfers:h2": "posts/post_manifest_2026_h2.csv",
+            "releases": "holding/discharges_2026.xlsx",
+        },
+        "roster_file": "members.xlsx",
+    },
+}
+
+# ---------------------------------------------------------------------------
+# Source profiles: how each agency writes values, and how often each defect
+# is injected (rates are per person-record unless said otherwise).
+# ---------------------------------------------------------------------------
+PROFILES = {
+    "custody": dict(
+        reg_styles={"number": 33, "hr_dash": 30, "plain": 15, "hr_space_lower": 7, "float_text": 7,
+                    "sci": 6, "nm_space": 1, "sci_lossy": 1},
+        reg_missing=0.05, reg_digit=0.02, reg_swap=0.015, accent_drop=0.25, drop_second=0.30,
+        typo=0.03, swap_names=0.02, dob_missing=0.03, dob_swap=0.02, dob_off=0.025,
+        sex_missing=0.04, unknown_sex="", parent_reg_both=0.015,
+        sex_styles=[(92, ("M", "F")), (5, ("Male", "Female")), (3, ("masc", "fem"))]),
+    "omc": dict(
+        reg_styles={"grouped_space": 40, "number": 30, "hr_dash": 20, "sci": 5, "float_text": 5},
+        reg_missing=0.10, reg_digit=0.02, reg_swap=0.015, accent_drop=0.35, drop_second=0.35,
+        typo=0.04, swap_names=0.02, dob_missing=0.05, dob_swap=0.03, dob_off=0.03,
+        sex_missing=0.05, unknown_sex="", age_instead=0.22,
+        sex_styles=[(93, ("1", "2")), (7, ("M", "F"))]),
+    "tracing": dict(
+        reg_styles={"hr_dash": 40, "plain": 30, "stripped_text": 20, "hr_space_lower": 10},
+        reg_missing=0.08, reg_digit=0.02, reg_swap=0.015, accent_drop=0.10, drop_second=0.20,
+        typo=0.03, swap_names=0.03, dob_missing=0.04, dob_swap=0.02, dob_off=0.025,
+        sex_missing=0.05, unknown_sex="Unknown",
+        sex_styles=[(85, ("Male", "Female")), (15, ("M", "F"))]),
+    "legal": dict(
+        reg_styles={"hr_space_lower": 30, "hr_plain": 20, "grouped_space": 30, "number": 20},
+        reg_missing=0.15, reg_digit=0.03, reg_swap=0.02, accent_drop=0.05, drop_second=0.10,
+        typo=0.02, swap_names=0.015, dob_missing=0.06, dob_swap=0.02, dob_off=0.03,
+        sex_missing=0.03, unknown_sex="",
+        sex_styles=[(70, ("M", "F")), (20, ("Masc", "Fem")), (10, ("Male", "Female"))]),
+    "transfers": dict(
+        reg_styles={"nm_dash": 40, "plain": 40, "sci": 10, "float_text": 10},
+        reg_missing=0.06, reg_digit=0.02, reg_swap=0.015, accent_drop=0.15, drop_second=0.30,
+        typo=0.03, swap_names=0.02, dob_missing=0.03, dob_swap=0.02, dob_off=0.025,
+        sex_missing=0.04, unknown_sex="u", parent_reg_both=0.015,
+        sex_styles=[(100, ("m", "f"))]),
+    "releases": dict(
+        reg_styles={"hr_slash": 30, "number": 40, "hr_dash": 30},
+        reg_missing=0.05, reg_digit=0.015, reg_swap=0.01, accent_drop=0.30, drop_second=0.25,
+        typo=0.03, swap_names=0.02, dob_missing=0.03, dob_swap=0.02, dob_off=0.02,
+        sex_missing=0.04, unknown_sex="U", parent_reg_both=0.015,
+        sex_styles=[(90, ("Male", "Female")), (10, ("M", "F"))]),
+}
+
+# Custody log: one sheet per station, each with its own header habits.
+CUSTODY_SHEETS = {
+    "Quarry Gate": dict(names="split", v=0, style="title", age=False, repeat_header=True,
+                        gap_row=False, full_style="", dob_text=0.0),
+    "Linden Ford": dict(names="split", v=1, style="title", age=True, repeat_header=False,
+                        gap_row=True, full_style="", dob_text=0.10),
+    "Port Emberly": dict(names="full", v=0, style="dotted", age=False, repeat_header=True,
+                         gap_row=False, full_style="FAMILY, Given", dob_text=0.0),
+    "Saltreach": dict(names="full", v=1, style="upper", age=True, repeat_header=False,
+                      gap_row=False, full_style="Family, Given", dob_text=0.10),
+    "Vell Crossing": dict(names="split", v=2, style="title", age=False, repeat_header=True,
+                          gap_row=True, full_style="", dob_text=0.0),
+}
+REMARKS = ["", "", "", "", "", "interpreter requested", "medical check done", "property bag logged",
+           "awaiting OMC", "see file note", "held in family unit", "transferred in", "phone call made"]
+
+
+# ---------------------------------------------------------------------------
+# Small pure helpers
+# ---------------------------------------------------------------------------
+def luhn_check_digit(payload: str) -> str:
+    """Luhn check digit of a digit string (double every second digit from the right)."""
+    total = 0
+    for i, ch in enumerate(reversed(payload)):
+        d = int(ch)
+        if i % 2 == 0:
+            d *= 2
+            if d > 9:
+                d -= 9
+        total += d
+    return str((10 - total % 10) % 10)
+
+
+def luhn_valid(number: str) -> bool:
+    """True when the last digit of ``number`` is the Luhn check digit of the others."""
+    return number.isdigit() and len(number) >= 2 and luhn_check_digit(number[:-1]) == number[-1]
+
+
+_SPECIAL_ASCII = {"Ł": "L", "ł": "l", "Đ": "D", "đ": "d", "ı": "i", "Ø": "O", "ø": "o",
+                  "ß": "ss", "Æ": "AE", "æ": "ae", "Œ": "OE", "œ": "oe", "Þ": "Th", "þ": "th"}
+
+
+def strip_accents(text: str) -> str:
+    """Text with accents dropped, as an ASCII-only system would store it."""
+    decomposed = unicodedata.normalize("NFKD", text)
+    out = "".join(ch for ch in decomposed if not unicodedata.combining(ch))
+    return "".join(_SPECIAL_ASCII.get(ch, ch) for ch in out)
+
+
+def to_cp1252(text: str) -> str:
+    """Text a cp1252 export can hold: characters outside cp1252 lose their accents."""
+    out = []
+    for ch in text:
+        try:
+            ch.encode("cp1252")
+            out.append(ch)
+        except UnicodeEncodeError:
+            out.append(strip_accents(ch))
+    return unicodedata.normalize("NFC", "".join(out))
+
+
+def fold(text: str) -> str:
+    """Header folding for comparisons: lower case, no accents, no punctuation or spaces."""
+    return re.sub(r"[^0-9a-z]", "", strip_accents(str(text)).lower())
+
+
+def excel_serial(d: dt.date) -> int:
+    """1900-system serial number of a date (after 1900-03-01)."""
+    return (d - EXCEL_EPOCH).days
+
+
+def age_text_years_months(dob: dt.date, on: dt.date) -> tuple[int, int]:
+    """Whole years and whole months of age on a date."""
+    months = (on.year - dob.year) * 12 + (on.month - dob.month) - (1 if on.day < dob.day else 0)
+    return months // 12, months
+
+
+def add_years(d: dt.date, years: int) -> dt.date:
+    """Same day ``years`` later (29 Feb becomes 28 Feb)."""
+    try:
+        return d.replace(year=d.year + years)
+    except ValueError:
+        return d.replace(year=d.year + years, day=28)
+
+
+def format_reg(reg8: str, style: str):
+    """Write an 8-digit register number in one of the delivery's habits."""
+    a, b = reg8[:4], reg8[4:]
+    stripped = reg8.lstrip("0") or "0"
+    if style == "hr_dash":
+        return f"HR-{a}-{b}"
+    if style == "nm_dash":
+        return f"NM-{a}-{b}"
+    if style == "nm_space":
+        return f"NM {a} {b}"
+    if style == "hr_space_lower":
+        return f"hr {reg8}"
+    if style == "hr_slash":
+        return f"HR/{a}/{b}"
+    if style == "hr_plain":
+        return f"HR{reg8}"
+    if style == "grouped_space":
+        return f"{a} {b}"
+    if style == "plain":
+        return reg8
+    if style == "number":
+        return int(reg8)
+    if style == "stripped_text":
+        return stripped
+    if style == "float_text":
+        return f"{stripped}.0"
+    if style in ("sci", "sci_lossy"):
+        mant = stripped[1:].rstrip("0") if style == "sci" else stripped[1:3]
+        return f"{stripped[0]}.{mant}E+{len(stripped) - 1:02d}" if mant else \
+            f"{stripped[0]}E+{len(stripped) - 1:02d}"
+    raise ValueError(f"unknown register number style {style!r}")
+
+
+def fmt_date(d: dt.date, style: str) -> str:
+    """Text date in a named style."""
+    if style == "dmy":
+        return f"{d.day:02d}/{d.month:02d}/{d.year}"
+    if style == "dmy_short":
+        return f"{d.day}/{d.month}/{d.year}"
+    if style == "mdy":
+        return f"{d.month}/{d.day}/{d.year}"
+    if style == "mdy_pad":
+        return f"{d.month:02d}/{d.day:02d}/{d.year}"
+    if style == "iso":
+        return d.isoformat()
+    if style == "d_mon_y":
+        return f"{d.day} {MONTHS[d.month - 1]} {d.year}"
+    raise ValueError(f"unknown date style {style!r}")
+
+
+def display_header(name: str, style: str) -> str:
+    """A header as a sheet writes it (case and punctuation only; the folded name is unchanged)."""
+    if style == "upper":
+        return name.upper()
+    if style == "lower":
+        return name.lower()
+    if style == "dotted":
+        name = re.sub(r"\bNo\b", "No.", name)
+        return re.sub(r"\bDOB\b", "D.O.B.", name)
+    return name
+
+
+def weighted(rng: random.Random, table: dict | list):
+    """Draw a key from {key: weight} or a value from [(weight, value)]."""
+    if isinstance(table, dict):
+        items = list(table.items())
+        return rng.choices([k for k, _ in items], weights=[w for _, w in items])[0]
+    return rng.choices([v for _, v in table], weights=[w for w, _ in table])[0]
+
+
+# ---------------------------------------------------------------------------
+# The scenario: families, persons, their case events
+# ---------------------------------------------------------------------------
+@dataclass
+class Person:
+    pid: str
+    fid: str
+    role: str                 # child | parent | guardian
+    given: str
+    family: str
+    family_parts: tuple       # two parts for a double family name, else one
+    dob: dt.date
+    sex: str
+    reg: str                  # 8 digits, last one a Luhn check digit
+    placement: dt.date | None = None
+    shelter: str = ""
+
+
+@dataclass
+class Family:
+    fid: str
+    origin: str
+    station: str
+    intake: dt.date
+    adults: list = field(default_factory=list)
+    children: list = field(default_factory=list)
+    held_with: dict = field(default_factory=dict)     # child pid -> adult pid
+    reunified: dt.date | None = None
+    case_id: str = ""
+
+
+@dataclass
+class Row:
+    source: str
+    sheet: str
+    slots: dict               # slot -> pid
+    events: dict
+    extras: dict
+    order: tuple
+    kind: str = ""
+
+
+class Scenario:
+    """Families and persons drawn from one seed."""
+
+    def __init__(self, seed: int, n_families: int):
+        self.rng = random.Random(f"{seed}-people")
+        self.persons: dict[str, Person] = {}
+        self.families: list[Family] = []
+        self.used_regs: set[str] = set()
+        self._pn = 0
+        for i in range(n_families):
+            self.families.append(self._family(i + 1))
+        self._namesakes()
+
+    # -- building blocks --------------------------------------------------
+    def new_reg(self) -> str:
+        rng = self.rng
+        while True:
+            r = rng.random()
+            if r < 0.40:
+                payload = "0" + str(rng.randint(100000, 999999))
+            elif r < 0.45:
+                payload = "00" + str(rng.randint(10000, 99999))
+            else:
+                payload = str(rng.randint(1000000, 9999999))
+            reg = payload + luhn_check_digit(payload)
+            if reg not in self.used_regs:
+                self.used_regs.add(reg)
+                return reg
+
+    def family_name(self, origin: str) -> tuple[str, tuple]:
+        pool = ORIGINS[origin]
+        r = self.rng.random()
+        if pool["particle"] and r < pool["particle_share"]:
+            name = self.rng.choice(pool["particle"])
+            return name, (name,)
+        if r < pool["particle_share"] + pool["double"]:
+            a, b = self.rng.sample(pool["family"], 2)
+            sep = pool.get("double_sep", " ")
+            return f"{a}{sep}{b}", (a, b)
+        name = self.rng.choice(pool["family"])
+        return name, (name,)
+
+    def given_name(self, origin: str, sex: str, taken: list) -> str:
+        pool_origin = origin if self.rng.random() < 0.85 else self.rng.choice(ORIGIN_NAMES)
+        options = [g for g in ORIGINS[pool_origin][sex] if g not in taken]
+        if not options:
+            options = [g for o in ORIGIN_NAMES for g in ORIGINS[o][sex] if g not in taken]
+        return self.rng.choice(options)
+
+    def person(self, fam: Family, role: str, given: str, fname: tuple, dob: dt.date, sex: str) -> Person:
+        self._pn += 1
+        p = Person(f"P{self._pn:04d}", fam.fid, role, given, fname[0], fname[1], dob, sex, self.new_reg())
+        self.persons[p.pid] = p
+        return p
+
+    def _family(self, n: int) -> Family:
+        rng = self.rng
+        origin = rng.choices(ORIGIN_NAMES, weights=[ORIGINS[o]["weight"] for o in ORIGIN_NAMES])[0]
+        span = (LAST_INTAKE - FIRST_INTAKE).days
+        fam = Family(f"F{n:03d}", origin, rng.choice(STATIONS),
+                     FIRST_INTAKE + dt.timedelta(days=rng.randint(0, span)))
+        fam.case_id = f"FT-{fam.intake.year % 100:02d}-{n * 7 + 1000:04d}"
+        n_kids = rng.choices([1, 2, 3, 4], weights=[35, 30, 22, 13])[0]
+        kid_ages = sorted((rng.randint(0, 17) for _ in range(n_kids)), reverse=True)
+        n_adults = rng.choices([1, 2], weights=[70, 30])[0]
+        guardian = n_adults == 1 and rng.random() < 0.08
+        # adult sexes and names
+        if n_adults == 2:
+            sexes = ["M", "F"]
+        else:
+            sexes = ["F" if rng.random() < 0.75 else "M"]
+        adult_names = [self.family_name(origin) for _ in sexes]
+        if n_adults == 2 and rng.random() < 0.5 and origin != "hispanic":
+            adult_names[1] = adult_names[0]
+        if n_adults == 2 and origin == "hispanic" and len(adult_names[0][1]) == 2 == len(adult_names[1][1]):
+            a, b = adult_names[0][1][0], adult_names[1][1][0]
+            kids_name = (f"{a} {b}", (a, b))
+        elif guardian and rng.random() < 0.6:
+            kids_name = self.family_name(origin)
+        elif n_adults == 1 and rng.random() < 0.15:
+            kids_name = self.family_name(origin)
+        else:
+            kids_name = adult_names[0]
+        # children
+        taken: list = []
+        kid_dobs = []
+        for i, age in enumerate(kid_ages):
+            dob = fam.intake - dt.timedelta(days=age * 365 + rng.randint(15, 350))
+            kid_dobs.append(dob)
+        twins = n_kids >= 2 and rng.random() < 0.07
+        if twins:
+            kid_dobs[1] = kid_dobs[0]
+        for i, dob in enumerate(kid_dobs):
+            sex = rng.choice("MF")
+            given = self.given_name(origin, sex, taken)
+            taken.append(given)
+            fam.children.append(self.person(fam, "child", given, kids_name, dob, sex).pid)
+        oldest = min(kid_dobs)
+        youngest = max(kid_dobs)
+        oldest_age = (fam.intake - oldest).days // 365
+        youngest_age = (fam.intake - youngest).days // 365
+        for sex, fname in zip(sexes, adult_names):
+            lo = max(18, oldest_age + 16)
+            hi = max(lo, min(60, youngest_age + 45))
+            age = rng.randint(lo, hi)
+            dob = fam.intake - dt.timedelta(days=age * 365 + rng.randint(10, 350))
+            latest = add_years(oldest, -15)
+            if dob > latest:
+                dob = latest - dt.timedelta(days=rng.randint(0, 300))
+            given = self.given_name(origin, sex, taken)
+            taken.append(given)
+            role = "guardian" if guardian else "parent"
+            fam.adults.append(self.person(fam, role, given, fname, dob, sex).pid)
+        # who each child was held with; separation and placement
+        for c in fam.children:
+            fam.held_with[c] = fam.adults[1] if len(fam.adults) == 2 and rng.random() < 0.35 else fam.adults[0]
+        shelter = rng.choice(SHELTERS)
+        base = fam.intake + dt.timedelta(days=rng.randint(1, 8))
+        for c in fam.children:
+            p = self.persons[c]
+            p.shelter = shelter if rng.random() < 0.8 else rng.choice(SHELTERS)
+            p.placement = base + dt.timedelta(days=rng.choice([0, 0, 0, 1, 2]))
+        if rng.random() < 0.45:
+            latest = (LAST_EVENT - base).days
+            if latest > 25:
+                fam.reunified = base + dt.timedelta(days=rng.randint(20, min(240, latest)))
+        return fam
+
+    def _namesakes(self):
+        """Make a few persons in different families share given name, family name and birth year."""
+        rng = self.rng
+        made = 0
+        tries = 0
+        fams = self.families
+        while made < 12 and tries < 2000:
+            tries += 1
+            a, b = rng.sample(fams, 2)
+            ca = self.persons[rng.choice(a.children)]
+            cb = self.persons[rng.choice(b.children)]
+            if ca.sex != cb.sex or len(ca.family_parts) != 1 or len(cb.family_parts) != 1:
+                continue
+            if abs(ca.dob.year - cb.dob.year) > 2 or ca.dob == cb.dob:
+                continue
+            new_dob = cb.dob.replace(year=ca.dob.year) if not (cb.dob.month == 2 and cb.dob.day == 29) \
+                else cb.dob.replace(year=ca.dob.year, day=28)
+            if new_dob >= b.intake or new_dob == ca.dob:
+                continue
+            adults = [self.persons[x] for x in b.adults]
+            if any(add_years(ad.dob, 15) > new_dob for ad in adults):
+                continue
+            sibs = [self.persons[x] for x in b.children if x != cb.pid]
+            if any(s.given == ca.given for s in sibs):
+                continue
+            old_family = cb.family
+            for x in b.children + b.adults:
+                px = self.persons[x]
+                if px.family == old_family:
+                    px.family, px.family_parts = ca.family, ca.family_parts
+            cb.given, cb.dob = ca.given, new_dob
+            made += 1
+        made = 0
+        tries = 0
+        while made < 4 and tries < 2000:
+            tries += 1
+            a, b = rng.sample(fams, 2)
+            pa = self.persons[a.adults[0]]
+            pb = self.persons[b.adults[0]]
+            if pa.sex != pb.sex or abs(pa.dob.year - pb.dob.year) > 3 or pa.family == pb.family:
+                continue
+            new_dob = pb.dob.replace(year=pa.dob.year, day=min(pb.dob.day, 28))
+            if any(add_years(new_dob, 15) > self.persons[c].dob for c in b.children):
+                continue
+            pb.given, pb.family, pb.family_parts, pb.dob = pa.given, pa.family, pa.family_parts, new_dob
+            made += 1
+
+
+# ---------------------------------------------------------------------------
+# Which rows each agency file holds
+# ---------------------------------------------------------------------------
+def plan_rows(sc: Scenario, seed: int) -> list[Row]:
+    """Rows of every agency file, with the persons each names (2-5 records per person)."""
+    rng = random.Random(f"{seed}-rows")
+    P = sc.persons
+    rows: list[Row] = []
+    for fam in sc.families:
+        in_tracing = rng.random() < 0.5
+        kids_custody = [c for c in fam.children if rng.random() < 0.92] if rng.random() < 0.85 else []
+        for k, c in enumerate(kids_custody):
+            parent = fam.held_with[c]
+            release = P[c].placement if rng.random() < 0.85 else None
+            rows.append(Row("custody", fam.station, {"child": c, "parent": parent},
+                            {"intake_date": fam.intake, "release_date": release, "location": fam.station},
+                            {"remarks": rng.choice(REMARKS)}, (fam.intake, fam.fid, k)))
+        separated = rng.random() < 0.85
+        for k, c in enumerate(fam.children):
+            if not (separated and rng.random() < 0.88):
+                continue
+            p = P[c]
+            status = "released to parent" if fam.reunified else rng.choice(["placed", "placed", "in care"])
+            rows.append(Row("omc", p.shelter, {"child": c}, {"placement_date": p.placement,
+                                                           "location": p.shelter, "status": status},
+                            {"caseworker": rng.choice(["K.M.", "A.R.", "T.O.", "S.B.", "L.V.", ""])},
+                            (p.placement, fam.fid, k)))
+            if rng.random() < 0.06:
+                other = rng.choice([s for s in SHELTERS if s != p.shelter])
+                moved = p.placement + dt.timedelta(days=rng.randint(10, 60))
+                rows.append(Row("omc", other, {"child": c}, {"placement_date": moved, "location": other,
+                                                           "status": "transferred in"},
+                                {"caseworker": rng.choice(["K.M.", "A.R.", "T.O."])},
+                                (moved, fam.fid, k), kind="transfer"))
+        if in_tracing:
+            members = [a for a in fam.adults if rng.random() < 0.9] + \
+                      [c for c in fam.children if rng.random() < 0.9]
+            for k, pid in enumerate(members):
+                rows.append(tracing_row(sc, fam, pid, k))
+        for k, a in enumerate(fam.adults):
+            if rng.random() < (0.72 if k == 0 else 0.5):
+                rows.append(legal_row(sc, fam, a, rng))
+                if rng.random() < 0.04:
+                    rows.append(legal_row(sc, fam, a, rng, later=True))
+        if fam.intake.year == 2026 and rng.random() < 0.4:
+            half = "h1" if fam.intake.month <= 6 else "h2"
+            arrival = fam.intake + dt.timedelta(days=rng.randint(1, 4))
+            facility = rng.choice([s for s in STATIONS if s != fam.station])
+            for k, c in enumerate(fam.children):
+                if rng.random() < 0.9:
+                    rows.append(Row("transfers", half, {"child": c, "parent": fam.held_with[c]},
+                                    {"intake_date": arrival, "location": facility},
+                                    {"escort": rng.choice(["NMHA van 3", "NMHA van 7", "escort team B", ""])},
+                                    (arrival, fam.fid, k)))
+        if fam.reunified:
+            for k, c in enumerate(fam.children):
+                if rng.random() < 0.9:
+                    rows.append(release_row(fam, c, fam.held_with[c], fam.reunified, k))
+    # three releases booked after the cutoff date (planned, not yet done)
+    late = [r for r in rows if r.source == "releases"][:3]
+    for i, r in enumerate(late):
+        r.events["release_date"] = dt.date(2026, 11, 4 + 5 * i)
+        r.events["status"] = "scheduled"
+        r.sheet = "2026-Q4"
+        r.kind = "after cutoff"
+    balance_counts(sc, rows, rng)
+    return rows
+
+
+def tracing_row(sc: Scenario, fam: Family, pid: str, k: int) -> Row:
+    status = "reunified" if fam.reunified else "open"
+    return Row("tracing", "tracing", {"member": pid}, {"status": status, "release_date": fam.reunified},
+               {"case_id": fam.case_id}, (fam.case_id, 0 if sc.persons[pid].role != "child" else 1, k))
+
+
+def legal_row(sc: Scenario, fam: Family, pid: str, rng: random.Random, later: bool = False) -> Row:
+    when = fam.intake + dt.timedelta(days=rng.randint(3, 60) + (rng.randint(30, 90) if later else 0))
+    when = min(when, LAST_EVENT)
+    kids = [sc.persons[c].given.split()[0] for c in fam.children if fam.held_with[c] == pid or rng.random() < 0.5]
+    return Row("legal", str(when.year), {"parent": pid}, {"intake_date": when, "location": fam.station},
+               {"children_named": ", ".join(kids), "interpreter": rng.choice(["", "", "yes", "no"])},
+               (when, fam.fid, pid), kind="repeat visit" if later else "")
+
+
+def release_row(fam: Family, child: str, adult: str, when: dt.date, k: int) -> Row:
+    quarter = f"{when.year}-Q{(when.month - 1) // 3 + 1}"
+    return Row("releases", quarter, {"child": child, "parent": adult},
+               {"release_date": when, "status": "reunified"}, {"released_to": "parent"},
+               (when, fam.fid, k))
+
+
+def person_counts(rows: list[Row]) -> Counter:
+    return Counter(pid for r in rows for pid in r.slots.values())
+
+
+def balance_counts(sc: Scenario, rows: list[Row], rng: random.Random) -> None:
+    """Cap every person at 5 records and lift everyone to at least 2."""
+    counts = person_counts(rows)
+    # parents named on many sibling rows: blank the repeats (later rows first)
+    for pid in sc.persons:
+        if counts[pid] <= 5:
+            continue
+        mine = [r for r in rows if r.slots.get("parent") == pid and "child" in r.slots]
+        seen = Counter()
+        repeats = []
+        for r in sorted(mine, key=lambda r: (r.source, r.order)):
+            seen[(r.source, r.sheet)] += 1
+            if seen[(r.source, r.sheet)] > 1:
+                repeats.append(r)
+        for r in reversed(repeats):
+            if counts[pid] <= 5:
+                break
+            del r.slots["parent"]
+            counts[pid] -= 1
+        if counts[pid] > 5:
+            for r in reversed([r for r in rows if r.slots.get("parent") == pid and r.source == "legal"]):
+                if counts[pid] <= 5:
+                    break
+                rows.remove(r)
+                counts[pid] -= 1
+    for pid in sc.persons:
+        while counts[pid] > 5:
+            r = next(r for r in rows if r.kind == "transfer" and r.slots.get("child") == pid)
+            rows.remove(r)
+            counts[pid] -= 1
+    fams = {f.fid: f for f in sc.families}
+    for pid, p in sc.persons.items():
+        while counts[pid] < 2:
+            fam = fams[p.fid]
+            in_tracing = any(r.source == "tracing" and r.slots.get("member") == pid for r in rows)
+            if not in_tracing:
+                rows.append(tracing_row(sc, fam, pid, 9))
+            elif p.role == "child":
+                rows.append(Row("omc", p.shelter, {"child": pid},
+                                {"placement_date": p.placement, "location": p.shelter, "status": "placed"},
+                                {"caseworker": ""}, (p.placement, fam.fid, 9)))
+            else:
+                rows.append(legal_row(sc, fam, pid, rng))
+            counts[pid] += 1
+
+
+# ---------------------------------------------------------------------------
+# Writing values with defects
+# ---------------------------------------------------------------------------
+class Writer:
+    """Turns true values into written cells, logging every injected defect."""
+
+    def __init__(self, seed: int, sc: Scenario):
+        self.rng = random.Random(f"{seed}-mess")
+        self.sc = sc
+        self.defects: list[dict] = []
+        self.where: dict = {}
+
+    def defect(self, slot: str, pid: str, fld: str, kind: str, written="", true=""):
+        self.defects.append({**self.where, "slot": slot, "person_id": pid, "field": fld,
+                             "kind": kind, "written": "" if written is None else str(written),
+                             "true_value": str(true)})
+
+    # -- register number --------------------------------------------------
+    def reg(self, prof: dict, slot: str, p: Person, csv_out: bool, force_reg: str | None = None):
+        rng = self.rng
+        if force_reg is None and rng.random() < prof["reg_missing"]:
+            self.defect(slot, p.pid, "reg_no", "missing", "", p.reg)
+            return None
+        reg = force_reg or p.reg
+        if force_reg:
+            self.defect(slot, p.pid, "reg_no", "other person's number (parent's)", force_reg, p.reg)
+        r = rng.random()
+        if r < prof["reg_digit"]:
+            i = rng.randrange(8)
+            d = rng.choice([x for x in "0123456789" if x != reg[i]])
+            reg = reg[:i] + d + reg[i + 1:]
+            self.defect(slot, p.pid, "reg_no", "one digit changed", reg, p.reg)
+        elif r < prof["reg_digit"] + prof["reg_swap"]:
+            pairs = [i for i in range(7) if reg[i] != reg[i + 1]]
+            i = rng.choice(pairs)
+            reg = reg[:i] + reg[i + 1] + reg[i] + reg[i + 2:]
+            self.defect(slot, p.pid, "reg_no", "adjacent digits swapped", reg, p.reg)
+        style = weighted(rng, prof["reg_styles"])
+        value = format_reg(reg, style)
+        if style in ("number", "stripped_text", "float_text", "sci") and reg.startswith("0"):
+            self.defect(slot, p.pid, "reg_no", "leading zeros lost", value, p.reg)
+        if style == "sci":
+            self.defect(slot, p.pid, "reg_no", "scientific notation", value, p.reg)
+        if style == "sci_lossy":
+            self.defect(slot, p.pid, "reg_no", "scientific notation, digits lost", value, p.reg)
+        if csv_out and isinstance(value, int):
+            value = str(value)
+        return value
+
+    # -- names --------------------------------------------------------------
+    def names(self, prof: dict, slot: str, p: Person) -> tuple[str, str, bool]:
+        """(given, family, swapped) as written."""
+        rng = self.rng
+        given, family = p.given, p.family
+        if len(p.family_parts) == 2 and rng.random() < prof["drop_second"]:
+            family = p.family_parts[0]
+            self.defect(slot, p.pid, "family_name", "second family name dropped", family, p.family)
+        if rng.random() < prof["accent_drop"] and strip_accents(given + family) != given + family:
+            given, family = strip_accents(given), strip_accents(family)
+            self.defect(slot, p.pid, "name", "accents dropped", f"{given} | {family}", f"{p.given} | {p.family}")
+        if rng.random() < prof["typo"]:
+            which = rng.choice(["given", "family"])
+            before = given if which == "given" else family
+            after = self.typo(before)
+            if which == "given":
+                given = after
+            else:
+                family = after
+            self.defect(slot, p.pid, f"{which}_name", "one-letter typo", after, before)
+        swapped = rng.random() < prof["swap_names"]
+        if swapped:
+            self.defect(slot, p.pid, "name", "given and family name swapped", f"{family} | {given}",
+                        f"{p.given} | {p.family}")
+        return given, family, swapped
+
+    def typo(self, text: str) -> str:
+        rng = self.rng
+        spots = [i for i, ch in enumerate(text) if ch.isalpha()]
+        if len(spots) < 3:
+            return text + text[-1]
+        i = rng.choice(spots[1:])
+        op = rng.choice(["sub", "del", "double"])
+        if op == "del":
+            return text[:i] + text[i + 1:]
+        if op == "double":
+            return text[:i] + text[i] + text[i:]
+        letter = rng.choice([c for c in "aeioulnrstmk" if c != text[i].lower()])
+        return text[:i] + (letter.upper() if text[i].isupper() else letter) + text[i + 1:]
+
+    # -- birth date -----------------------------------------------------------
+    def dob(self, prof: dict, slot: str, p: Person) -> dt.date | None:
+        rng = self.rng
+        d = p.dob
+        if rng.random() < prof["dob_missing"]:
+            self.defect(slot, p.pid, "birth_date", "missing", "", d.isoformat())
+            return None
+        if rng.random() < prof["dob_swap"] and d.day <= 12 and d.day != d.month:
+            w = d.replace(day=d.month, month=d.day)
+            self.defect(slot, p.pid, "birth_date", "day and month swapped", w.isoformat(), d.isoformat())
+            return w
+        if rng.random() < prof["dob_off"]:
+            part = rng.choice(["day", "month", "year"])
+            step = rng.choice([-1, 1])
+            if part == "day":
+                w = d + dt.timedelta(days=step)
+            elif part == "month":
+                m = d.month + step
+                w = d.replace(month=12 if m == 0 else 1 if m == 13 else m, day=min(d.day, 28))
+            else:
+                w = add_years(d, step)
+            self.defect(slot, p.pid, "birth_date", f"{part} off by one", w.isoformat(), d.isoformat())
+            return w
+        return d
+
+    # -- sex ------------------------------------------------------------------
+    def sex(self, prof: dict, slot: str, p: Person, styles=None) -> str:
+        rng = self.rng
+        if rng.random() < prof["sex_missing"]:
+            value = prof["unknown_sex"] if rng.random() < 0.5 else ""
+            self.defect(slot, p.pid, "sex", "missing or unknown", value, p.sex)
+            return value
+        m, f = weighted(rng, styles or prof["sex_styles"])
+        return m if p.sex == "M" else f
+
+    # -- age ------------------------------------------------------------------
+    def age(self, p: Person, on: dt.date, as_text: bool):
+        rng = self.rng
+        years, months = age_text_years_months(p.dob, on)
+        if years < 2:
+            value = rng.choice([f"{months} mo", f"{months} months", f"{months} m"])
+        elif as_text:
+            value = rng.choice([str(years), f"{years} yrs", f"{years} years"])
+        else:
+            value = years if rng.random() < 0.7 else f"{years} yrs"
+        return value
+
+
+# ---------------------------------------------------------------------------
+# Files
+# ---------------------------------------------------------------------------
+def header_name(vocab: dict, owner: str, fld: str, v: int, style: str) -> str:
+    """Display header of (owner, field) in variant ``v``."""
+    if owner == "unmapped":
+        return display_header(vocab["unmapped"][fld], style)
+    if owner == "slot_column":
+        return display_header(vocab["slot_column"], style)
+    table = vocab["fields"] if owner in ("generic", "event") else vocab[owner]
+    names = table[fld]
+    return display_header(names[v % len(names)], style)
+
+
+def full_name(given: str, family: str, style: str) -> str:
+    if style == "FAMILY, Given":
+        return f"{family.upper()}, {given}"
+    if style == "Family, Given":
+        return f"{family}, {given}"
+    return f"{given} {family}"
+
+
+class Delivery:
+    """Renders the planned rows into files and collects the truth."""
+
+    def __init__(self, out_dir: Path, vocabulary: str, seed: int, n_families: int):
+        if vocabulary not in VOCAB:
+            raise ValueError(f"vocabulary must be one of {', '.join(VOCAB)}, got {vocabulary!r}")
+        self.out = Path(out_dir)
+        self.mode = vocabulary
+        self.vocab = VOCAB[vocabulary]
+        self.sc = Scenario(seed, n_families)
+        self.rows = plan_rows(self.sc, seed)
+        self.w = Writer(seed, self.sc)
+        self.layout_rng = random.Random(f"{seed}-layout")
+        self.truth: list[dict] = []
+        self.files: dict[str, int] = {}
+
+    # -- helpers ---------------------------------------------------------------
+    def rows_of(self, source: str, sheet: str | None = None) -> list[Row]:
+        out = [r for r in self.rows if r.source == source and (sheet is None or r.sheet == sheet)]
+        return sorted(out, key=lambda r: (r.order[0], r.order[1], str(r.order[2])))
+
+    def rel(self, key: str) -> str:
+        return self.vocab["files"][key]
+
+    def record(self, source_file: str, sheet: str, row: int, slot: str, pid: str):
+        self.truth.append({"source_file": source_file, "sheet": sheet, "row": row, "slot": slot,
+                           "person_id": pid})
+
+    def person_cells(self, prof: dict, slot: str, p: Person, csv_out: bool, force_reg=None,
+                     sex_styles=None) -> dict:
+        """Written values of one person: reg, given, family, swapped, dob, sex."""
+        reg = self.w.reg(prof, slot, p, csv_out, force_reg)
+        given, family, swapped = self.w.names(prof, slot, p)
+        dob = self.w.dob(prof, slot, p)
+        sex = self.w.sex(prof, slot, p, sex_styles)
+        return {"reg": reg, "given": given, "family": family, "swapped": swapped, "dob": dob, "sex": sex}
+
+    def parent_reg_for_child(self, prof: dict, row: Row) -> str | None:
+        if "parent" in row.slots and self.w.rng.random() < prof.get("parent_reg_both", 0):
+            return self.sc.persons[row.slots["parent"]].reg
+        return None
+
+    # -- custody log ---------------------------------------------------------------
+    def write_custody(self):
+        rel = self.rel("custody")
+        prof = PROFILES["custody"]
+        wb = openpyxl.Workbook()
+        wb.remove(wb.active)
+        for sheet, lay in CUSTODY_SHEETS.items():
+            ws = wb.create_sheet(sheet)
+            v, style = lay["v"], lay["style"]
+            cols = [("child", "reg_no")]
+            cols += [("child", "family_name"), ("child", "given_name")] if lay["names"] == "split" \
+                else [("child", "full_name")]
+            cols += [("child", "birth_date")] + ([("child", "age")] if lay["age"] else []) + [("child", "sex")]
+            cols += [("parent", "reg_no")]
+            cols += [("parent", "family_name"), ("parent", "given_name")] if lay["names"] == "split" \
+                else [("parent", "full_name")]
+            cols += [("parent", "birth_date"), ("parent", "sex"), ("event", "intake_date"),
+                     ("event", "release_date"), ("event", "location"), ("unmapped", "remarks")]
+            header = [header_name(self.vocab, o, f, v, style) for o, f in cols]
+            title = ("Northern March Holding Authority - custody log - " if self.mode == "demo"
+                     else "NMHA holding book - ") + f"{sheet} station"
+            ws.cell(row=1, column=1, value=title)
+            ws.cell(row=2, column=1, value="Extract of 2026-10-05. Entries as keyed at intake; not verified. "
+                                           "Times removed.")
+            r = 4 if lay["gap_row"] else 3
+            for c, h in enumerate(header, 1):
+                ws.cell(row=r, column=c, value=h)
+            r += 1
+            rows = self.rows_of("custody", sheet)
+            blanks = sorted(self.layout_rng.sample(range(2, max(3, len(rows))), k=min(2, max(0, len(rows) - 3))))
+            repeat_at = len(rows) // 2 if lay["repeat_header"] and len(rows) > 10 else -1
+            for i, row in enumerate(rows):
+                if i in blanks:
+                    r += 1
+                if i == repeat_at:
+                    for c, h in enumerate(header, 1):
+                        ws.cell(row=r, column=c, value=h)
+                    r += 1
+                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                values = {}
+                force = self.parent_reg_for_child(prof, row)
+                for slot in ("child", "parent"):
+                    if slot not in row.slots:
+                        continue
+                    p = self.sc.persons[row.slots[slot]]
+                    cells = self.person_cells(prof, slot, p, False, force if slot == "child" else None)
+                    g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+                    dob = cells["dob"]
+                    if slot == "child" and lay["age"] and self.w.rng.random() < 0.15:
+                        values[(slot, "age")] = self.w.age(p, row.events["intake_date"], False)
+                        if dob is not None:
+                            self.w.defect(slot, p.pid, "birth_date", "age instead of birth date",
+                                          values[(slot, "age")], p.dob.isoformat())
+                        dob = None
+                    if dob is not None and self.w.rng.random() < lay["dob_text"]:
+                        dob = fmt_date(dob, "dmy")
+                    values[(slot, "reg_no")] = cells["reg"]
+                    values[(slot, "given_name")] = g
+                    values[(slot, "family_name")] = f
+                    values[(slot, "full_name")] = full_name(g, f, lay["full_style"] or "FAMILY, Given")
+                    values[(slot, "birth_date")] = dob
+                    values[(slot, "sex")] = cells["sex"]
+                    self.record(rel, sheet, r, slot, p.pid)
+                for k, val in row.events.items():
+                    values[("event", k)] = val
+                values[("unmapped", "remarks")] = row.extras.get("remarks", "")
+                for c, key in enumerate(cols, 1):
+                    put(ws, r, c, values.get(key), "dd/mm/yyyy")
+                r += 1
+            ws.cell(row=r, column=1, value="Total")
+            ws.cell(row=r, column=2, value=len(rows))
+        self.save_xlsx(wb, rel)
+
+    # -- OMC placements ------------------------------------------------------------------
+    def write_omc(self):
+        rel = self.rel("omc")
+        prof = PROFILES["omc"]
+        wb = openpyxl.Workbook()
+        wb.remove(wb.active)
+        cols = [("child", "reg_no", 0), ("child", "family_name", 0), ("child", "given_name", 0),
+                ("child", "birth_date", 0), ("child", "age", 1), ("child", "sex", 0),
+                ("event", "placement_date", 0), ("event", "location", 3), ("event", "status", 0),
+                ("unmapped", "caseworker", 0)]
+        for sheet in SHELTERS + [EMPTY_SHELTER]:
+            ws = wb.create_sheet(sheet)
+            if sheet == EMPTY_SHELTER:
+                continue
+            title = ("Office for Minors in Care - placements - " if self.mode == "demo"
+                     else "Minors office - children housed - ") + sheet
+            ws.cell(row=1, column=1, value=title)
+            header = [header_name(self.vocab, o, f, v, "title") for o, f, v in cols]
+            for c, h in enumerate(header, 1):
+                ws.cell(row=3, column=c, value=h)
+            r = 4
+            for row in self.rows_of("omc", sheet):
+                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                p = self.sc.persons[row.slots["child"]]
+                cells = self.person_cells(prof, "child", p, False)
+                g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+                dob, age = cells["dob"], None
+                if self.w.rng.random() < prof["age_instead"]:
+                    age = self.w.age(p, row.events["placement_date"], True)
+                    if dob is not None:
+                        self.w.defect("child", p.pid, "birth_date", "age instead of birth date", age,
+                                      p.dob.isoformat())
+                    dob = None
+                date_style = weighted(self.w.rng, {"cell": 40, "serial": 25, "text": 35})
+                values = {("child", "reg_no"): cells["reg"], ("child", "given_name"): g,
+                          ("child", "family_name"): f, ("child", "birth_date"): omc_date(dob, date_style, self.w.rng),
+                          ("child", "age"): age, ("child", "sex"): cells["sex"],
+                          ("event", "placement_date"): omc_date(row.events["placement_date"], date_style, self.w.rng),
+                          ("event", "location"): row.events["location"], ("event", "status"): row.events["status"],
+                          ("unmapped", "caseworker"): row.extras.get("caseworker", "")}
+                for c, (o, fl, _) in enumerate(cols, 1):
+                    put(ws, r, c, values.get((o, fl)), "m/d/yyyy")
+                self.record(rel, sheet, r, "child", p.pid)
+                r += 1
+        self.save_xlsx(wb, rel)
+
+    # -- family tracing CSV (cp1252) -------------------------------------------------------
+    def write_tracing(self):
+        rel = self.rel("tracing")
+        stem = Path(rel).stem
+        prof = PROFILES["tracing"]
+        cols = [("unmapped", "case_id", 0), ("slot_column", "", 0), ("generic", "reg_no", 0),
+                ("generic", "full_name", 0), ("generic", "birth_date", 0), ("generic", "sex", 0),
+                ("event", "status", 1), ("event", "release_date", 1)]
+        header = [header_name(self.vocab, o, f, v, "dotted") for o, f, v in cols]
+        lines = [header]
+        members = self.vocab["member_values"]
+        for row in self.rows_of("tracing"):
+            n = len(lines) + 1
+            self.w.where = {"source_file": rel, "sheet": stem, "row": n}
+            p = self.sc.persons[row.slots["member"]]
+            slot = "child" if p.role == "child" else "parent"
+            cells = self.person_cells(prof, slot, p, True)
+            g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+            name = full_name(g, f, "FAMILY, Given" if self.w.rng.random() < 0.15 else "Given Family")
+            if to_cp1252(name) != name:
+                self.w.defect(slot, p.pid, "name", "transliterated for cp1252", to_cp1252(name), name)
+                name = to_cp1252(name)
+            dob = fmt_date(cells["dob"], "dmy" if self.w.rng.random() < 0.8 else "dmy_short") if cells["dob"] else ""
+            rel_date = row.events.get("release_date")
+            mtype = self.w.rng.choice(members[p.role])
+            lines.append([row.extras["case_id"], mtype, cells["reg"] or "", name, dob, cells["sex"],
+                          row.events["status"], fmt_date(rel_date, "dmy") if rel_date else ""])
+            self.record(rel, stem, n, slot, p.pid)
+        self.save_csv(lines, rel, "cp1252")
+
+    # -- legal-aid intake ------------------------------------------------------------------
+    def write_legal(self):
+        rel = self.rel("legal")
+        prof = PROFILES["legal"]
+        wb = openpyxl.Workbook()
+        wb.remove(wb.active)
+        cols = [("unmapped", "clinic_file", 0), ("generic", "family_name", 1), ("generic", "given_name", 2),
+                ("generic", "birth_date", 1), ("generic", "reg_no", 4), ("generic", "sex", 1),
+                ("event", "intake_date", 1), ("event", "location", 2), ("unmapped", "children_named", 0),
+                ("unmapped", "interpreter", 0)]
+        n_file = 0
+        for sheet in ("2025", "2026"):
+            ws = wb.create_sheet(f"Intake {sheet}")
+            name = ws.title
+            ws.cell(row=1, column=1, value="Linden Ford Legal Aid Clinic" if self.mode == "demo"
+                    else "Border Clinic - parents seen")
+            ws.cell(row=2, column=1, value=f"Parent intake sheet {sheet} - confidential, prepared for class counsel")
+            header = [header_name(self.vocab, o, f, v, "title") for o, f, v in cols]
+            for c, h in enumerate(header, 1):
+                ws.cell(row=4, column=c, value=h)
+            r = 5
+            for row in self.rows_of("legal", sheet):
+                n_file += 1
+                self.w.where = {"source_file": rel, "sheet": name, "row": r}
+                p = self.sc.persons[row.slots["parent"]]
+                cells = self.person_cells(prof, "parent", p, False)
+                g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+                dob = cells["dob"]
+                if dob is not None and self.w.rng.random() < 0.3:
+                    dob = fmt_date(dob, "dmy")
+                values = {("unmapped", "clinic_file"): f"LA-{sheet[2:]}-{n_file:04d}",
+                          ("generic", "family_name"): f, ("generic", "given_name"): g,
+                          ("generic", "birth_date"): dob, ("generic", "reg_no"): cells["reg"],
+                          ("generic", "sex"): cells["sex"], ("event", "intake_date"): row.events["intake_date"],
+                          ("event", "location"): row.events["location"],
+                          ("unmapped", "children_named"): row.extras["children_named"],
+                          ("unmapped", "interpreter"): row.extras["interpreter"]}
+                for c, (o, fl, _) in enumerate(cols, 1):
+                    put(ws, r, c, values.get((o, fl)), "dd/mm/yyyy")
+                self.record(rel, name, r, "parent", p.pid)
+                r += 1
+            r += 1
+            for note in ("Notes:", "* Reg # as stated by the client; not checked against NMHA records.",
+                         "* Children named as given by the parent at intake."):
+                ws.cell(row=r, column=1, value=note)
+                r += 1
+        self.save_xlsx(wb, rel)
+
+    # -- station transfers (UTF-8 with BOM) ------------------------------------------------
+    def write_transfers(self):
+        prof = PROFILES["transfers"]
+        layouts = {
+            "h1": ([("child", "reg_no", 2), ("child", "family_name", 2), ("child", "given_name", 2),
+                    ("child", "birth_date", 2), ("child", "sex", 2), ("parent", "reg_no", 1),
+                    ("parent", "family_name", 1), ("parent", "given_name", 1), ("parent", "birth_date", 1),
+                    ("parent", "sex", 1), ("event", "intake_date", 2), ("event", "location", 1),
+                    ("unmapped", "escort", 0)], "dotted", {"child": [(100, ("m", "f"))], "parent": [(100, ("m", "f"))]}),
+            "h2": ([("child", "reg_no", 3), ("child", "family_name", 1), ("child", "given_name", 1),
+                    ("child", "birth_date", 1), ("child", "sex", 1), ("parent", "reg_no", 3),
+                    ("parent", "family_name", 2), ("parent", "given_name", 2), ("parent", "birth_date", 2),
+                    ("parent", "sex", 2), ("event", "intake_date", 1), ("event", "location", 0),
+                    ("unmapped", "escort", 0)], "lower",
+                   {"child": [(100, ("Boy", "Girl"))], "parent": [(100, ("Male", "Female"))]}),
+        }
+        for half, (cols, style, sexes) in layouts.items():
+            rel = self.rel(f"transfers:{half}")
+            stem = Path(rel).stem
+            lines = [[header_name(self.vocab, o, f, v, style) for o, f, v in cols]]
+            for row in self.rows_of("transfers", half):
+                n = len(lines) + 1
+                self.w.where = {"source_file": rel, "sheet": stem, "row": n}
+                values = {}
+                force = self.parent_reg_for_child(prof, row)
+                for slot in ("child", "parent"):
+                    if slot not in row.slots:
+                        continue
+                    p = self.sc.persons[row.slots[slot]]
+                    cells = self.person_cells(prof, slot, p, True, force if slot == "child" else None,
+                                              sexes[slot])
+                    g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+                    values.update({(slot, "reg_no"): cells["reg"], (slot, "given_name"): g,
+                                   (slot, "family_name"): f,
+                                   (slot, "birth_date"): cells["dob"].isoformat() if cells["dob"] else "",
+                                   (slot, "sex"): cells["sex"]})
+                    self.record(rel, stem, n, slot, p.pid)
+                values[("event", "intake_date")] = row.events["intake_date"].isoformat()
+                values[("event", "location")] = row.events["location"]
+                values[("unmapped", "escort")] = row.extras["escort"]
+                lines.append([values.get((o, f)) or "" for o, f, _ in cols])
+            self.save_csv(lines, rel, "utf-8-sig")
+
+    # -- release list -----------------------------------------------------------------
+    def write_releases(self):
+        rel = self.rel("releases")
+        prof = PROFILES["releases"]
+        wb = openpyxl.Workbook()
+        wb.remove(wb.active)
+        cols = [("child", "full_name", 1), ("child", "reg_no", 1), ("child", "birth_date", 1),
+                ("child", "sex", 1), ("parent", "full_name", 2), ("parent", "reg_no", 2),
+                ("parent", "birth_date", 2), ("parent", "sex", 2), ("event", "release_date", 2),
+                ("event", "status", 0), ("unmapped", "released_to", 0)]
+        sheets = sorted({r.sheet for r in self.rows if r.source == "releases"})
+        for sheet in sheets:
+            ws = wb.create_sheet(sheet)
+            ws.cell(row=1, column=1, value=("NMHA releases and reunifications, " if self.mode == "demo"
+                                            else "Discharges, ") + sheet)
+            header = [header_name(self.vocab, o, f, v, "title") for o, f, v in cols]
+            for c, h in enumerate(header, 1):
+                ws.cell(row=2, column=c, value=h)
+            r = 3
+            for row in self.rows_of("releases", sheet):
+                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                values = {}
+                force = self.parent_reg_for_child(prof, row)
+                for slot in ("child", "parent"):
+                    if slot not in row.slots:
+                        continue
+                    p = self.sc.persons[row.slots[slot]]
+                    cells = self.person_cells(prof, slot, p, False, force if slot == "child" else None)
+                    g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
+                    values.update({(slot, "full_name"): full_name(g, f, "Given Family"),
+                                   (slot, "reg_no"): cells["reg"],
+                                   (slot, "birth_date"): fmt_date(cells["dob"], "d_mon_y") if cells["dob"] else None,
+                                   (slot, "sex"): cells["sex"]})
+                    self.record(rel, sheet, r, slot, p.pid)
+                if row.kind == "after cutoff":
+                    self.w.defect("", "", "release_date", "event after the cutoff date",
+                                  row.events["release_date"].isoformat(), "")
+                values[("event", "release_date")] = fmt_date(row.events["release_date"], "d_mon_y")
+                values[("event", "status")] = row.events["status"]
+                values[("unmapped", "released_to")] = row.extras["released_to"]
+                for c, (o, fl, _) in enumerate(cols, 1):
+                    put(ws, r, c, values.get((o, fl)), "dd/mm/yyyy")
+                r += 1
+        self.save_xlsx(wb, rel)
+
+    # -- roster and truth ---------------------------------------------------------------
+    def write_roster(self) -> list[dict]:
+        rng = random.Random(f"{self.sc.rng.random()}-roster")  # noqa: S311 - seeded by the scenario stream
+        listed = [p for p in self.sc.persons.values() if rng.random() < 0.93]
+        missing = [p for p in self.sc.persons.values() if p not in listed]
+        # a few class members no agency file mentions
+        invented = []
+        fake_fam = Family("F000", "hispanic", STATIONS[0], dt.date(2026, 1, 15))
+        for i in range(8):
+            origin = rng.choice(ORIGIN_NAMES)
+            sex = rng.choice("MF")
+            fname = self.sc.family_name(origin)
+            given = self.sc.given_name(origin, sex, [])
+            dob = dt.date(rng.randint(1975, 2020), rng.randint(1, 12), rng.randint(1, 28))
+            reg = self.sc.new_reg()
+            invented.append(Person("", "", "child" if dob.year > 2008 else "parent", given, fname[0],
+                                   fname[1], dob, sex, reg))
+        entries = [(p, p.pid) for p in listed] + [(p, "") for p in invented]
+        entries.sort(key=lambda e: (fold(e[0].family), fold(e[0].given), e[0].dob, e[0].reg))
+        wb = openpyxl.Workbook()
+        ws = wb.active
+        ws.title = self.vocab["roster_sheet"]
+        cols = ["reg_no", "family_name", "given_name", "birth_date", "sex"]
+        for c, key in enumerate(cols, 1):
+            ws.cell(row=1, column=c, value=self.vocab["roster"][key])
+        out = []
+        for i, (p, pid) in enumerate(entries):
+            r = i + 2
+            for c, val in enumerate([format_reg(p.reg, "hr_dash"), p.family, p.given, p.dob, p.sex], 1):
+                put(ws, r, c, val, "dd/mm/yyyy")
+            out.append({"roster_row": r, "person_id": pid, "status": "listed" if pid else "roster only"})
+        for p in missing:
+            out.append({"roster_row": "", "person_id": p.pid, "status": "not on roster"})
+        rel = Path("roster") / self.vocab["roster_file"]
+        self.save_xlsx(wb, str(rel), base=self.out)
+        return out
+
+    def write_truth(self, roster: list[dict]):
+        tdir = self.out / "truth"
+        tdir.mkdir(parents=True, exist_ok=True)
+        appearing = {t["person_id"] for t in self.truth}
+        persons = [p for p in self.sc.persons.values() if p.pid in appearing]
+        write_table(tdir / "persons.csv",
+                    ["person_id", "family_id", "role", "given_name", "family_name", "birth_date", "sex", "reg_no"],
+                    [[p.pid, p.fid, p.role, p.given, p.family, p.dob.isoformat(), p.sex, p.reg] for p in persons])
+        write_table(tdir / "records.csv", ["source_file", "sheet", "row", "slot", "person_id"],
+                    [[t["source_file"], t["sheet"], t["row"], t["slot"], t["person_id"]] for t in self.truth])
+        rel_rows = [[c, a] for f in self.sc.families for c in f.children for a in f.adults]
+        write_table(tdir / "relations.csv", ["child_person_id", "parent_person_id"], rel_rows)
+        write_table(tdir / "roster.csv", ["roster_row", "person_id", "status"],
+                    [[r["roster_row"], r["person_id"], r["status"]] for r in roster])
+        keys = ["source_file", "sheet", "row", "slot", "person_id", "field", "kind", "written", "true_value"]
+        write_table(tdir / "defects.csv", keys, [[d.get(k, "") for k in keys] for d in self.w.defects])
+
+    # -- output plumbing -----------------------------------------------------------------
+    def save_xlsx(self, wb, rel: str, base: Path | None = None):
+        path = (base or self.out / "delivery") / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        wb.properties.creator = "Northern March sample generator"
+        wb.properties.created = FIXED_TIME
+        wb.properties.modified = FIXED_TIME
+        buf = io.BytesIO()
+        wb.save(buf)
+        path.write_bytes(repack_zip(buf.getvalue()))
+
+    def save_csv(self, lines: list[list], rel: str, encoding: str):
+        path = self.out / "delivery" / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        text = io.StringIO()
+        csv.writer(text, lineterminator="\r\n").writerows(lines)
+        path.write_bytes(text.getvalue().encode(encoding))
+
+    def write_config(self):
+        """alternate.toml: the demo config's structure with this vocabulary."""
+        v = self.vocab
+        files = v["files"]
+
+        def names(lst):
+            return "[" + ", ".join(json.dumps(x.lower(), ensure_ascii=False) for x in lst) + "]"
+
+        def pattern(key):
+            stem = Path(files[key]).name.split("_2026")[0]
+            return f"{stem}*{Path(files[key]).suffix}"
+
+        lines = [
+            "# linker configuration for a generated delivery in the alternate vocabulary",
+            "# (fictional scenario: the Northern March Holding Authority and its partner agencies).",
+            "# Written by sample/generate.py; paths are relative to this file.",
+            "",
+            "[delivery]",
+            'folder = "delivery"',
+            'patterns = ["**/*.xlsx", "**/*.csv"]',
+            "exclude = []",
+            "skip_unreadable = false",
+            "",
+            "[identifier]",
+            'label = "holding register number"',
+            "digits = 8",
+            'prefixes = ["HR", "NM"]',
+            'separators = ["-", " ", "/", "."]',
+            'check_digit = "luhn"',
+            "",
+            "[dates]",
+            'order = "auto"',
+            'fallback_order = "dmy"',
+            "min_year = 1900",
+            'as_of = "2026-11-01"',
+            'age_reference = ["intake_date", "placement_date"]',
+            "",
+            "[sex]",
+            'codes = { m = "M", male = "M", boy = "M", masc = "M", h = "M", f = "F", female = "F", '
+            'girl = "F", fem = "F", u = "", unknown = "", x = "" }',
+            "",
+        ]
+        for slot in ("child", "parent"):
+            lines.append(f"[slots.{slot}.columns]")
+            for fld, lst in v[slot].items():
+                lines.append(f"{fld} = {names(lst)}")
+            lines.append("")
+        lines.append("[fields]")
+        for fld, lst in v["fields"].items():
+            lines.append(f"{fld} = {names(lst)}")
+        slot_values = {}
+        for role, vals in v["member_values"].items():
+            for val in vals:
+                slot_values[val.lower()] = "child" if role == "child" else "parent"
+        sv = ", ".join(f"{json.dumps(k)} = {json.dumps(s)}" for k, s in slot_values.items())
+        lines += [
+            "",
+            "[[relations]]",
+            'child = "child"',
+            'parent = "parent"',
+            "",
+            "[[sheets]]",
+            f"file = {json.dumps(pattern('tracing'))}",
+            f"slot_column = {json.dumps(v['slot_column'].lower())}",
+            f"slot_values = {{ {sv} }}",
+            "",
+            "[[sheets]]",
+            f"file = {json.dumps(pattern('legal'))}",
+            'sheet = "*"',
+            'slot = "parent"',
+            "",
+            "[[sheets]]",
+            f"file = {json.dumps(pattern('omc'))}",
+            'date_order = "mdy"',
+            'sex_codes = { "1" = "M", "2" = "F" }',
+            "",
+            "[roster]",
+            f"file = {json.dumps('roster/' + v['roster_file'])}",
+            f"sheet = {json.dumps(v['roster_sheet'])}",
+            "columns = { " + ", ".join(f"{k} = {names([n])}" for k, n in v["roster"].items()) + " }",
+            "",
+            "[rules]",
+            'cutoff_date = "2026-10-31"',
+            "min_parent_age_gap = 12",
+            "",
+        ]
+        (self.out / "alternate.toml").write_text("\n".join(lines), encoding="utf-8")
+
+
+def omc_date(d: dt.date | None, style: str, rng: random.Random):
+    """A date as the minors' office writes it: date cell, serial number or m/d/y text."""
+    if d is None:
+        return None
+    if style == "cell":
+        return d
+    if style == "serial":
+        return excel_serial(d)
+    return fmt_date(d, "mdy" if rng.random() < 0.7 else "mdy_pad")
+
+
+def put(ws, r: int, c: int, value, date_format: str):
+    """Write a cell (None and "" stay empty)."""
+    if value is None or value == "":
+        return
+    cell = ws.cell(row=r, column=c, value=value)
+    if isinstance(value, dt.date):
+        cell.number_format = date_format
+
+
+def repack_zip(data: bytes) -> bytes:
+    """Rewrite an xlsx archive with fixed timestamps so that saves are byte-identical."""
+    src = zipfile.ZipFile(io.BytesIO(data))
+    out = io.BytesIO()
+    stamp = FIXED_TIME.strftime("%Y-%m-%dT%H:%M:%SZ").encode()
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as dst:
+        for info in src.infolist():
+            content = src.read(info.filename)
+            if info.filename == "docProps/core.xml":
+                content = re.sub(rb"(<dcterms:(?:created|modified)[^>]*>)[^<]*(</dcterms:)",
+                                 rb"\g<1>" + stamp + rb"\g<2>", content)
+            zi = zipfile.ZipInfo(info.filename, date_time=ZIP_TIME)
+            zi.compress_type = zipfile.ZIP_DEFLATED
+            zi.external_attr = 0o600 << 16
+            dst.writestr(zi, content)
+    return out.getvalue()
+
+
+def write_table(path: Path, header: list[str], rows: list[list]):
+    """UTF-8 CSV with LF line ends."""
+    text = io.StringIO()
+    w = csv.writer(text, lineterminator="\n")
+    w.writerow(header)
+    w.writerows(rows)
+    path.write_bytes(text.getvalue().encode("utf-8"))
+
+
+# ---------------------------------------------------------------------------
+# Public entry points
+# ---------------------------------------------------------------------------
+def write_delivery(out_dir, seed: int = SEED, n_families: int = N_FAMILIES,
+                   vocabulary: str = "demo") -> dict:
+    """Write ``delivery/``, ``roster/`` and ``truth/`` under ``out_dir``.
+
+    With ``vocabulary="alternate"`` the headers, file names and member-type
+    values are ones ``configs/sample.toml`` does not list, and a matching
+    ``out_dir/alternate.toml`` is written too.  Existing ``delivery``,
+    ``roster`` and ``truth`` folders under ``out_dir`` are replaced.
+
+    Returns
+    -------
+    dict
+        Counts: families, persons, records per file, defects per kind.
+    """
+    out = Path(out_dir)
+    for sub in ("delivery", "roster", "truth"):
+        if (out / sub).is_dir():
+            shutil.rmtree(out / sub)
+    out.mkdir(parents=True, exist_ok=True)
+    d = Delivery(out, vocabulary, seed, n_families)
+    d.write_custody()
+    d.write_omc()
+    d.write_tracing()
+    d.write_legal()
+    d.write_transfers()
+    d.write_releases()
+    roster = d.write_roster()
+    d.write_truth(roster)
+    if vocabulary == "alternate":
+        d.write_config()
+    per_person = Counter(t["person_id"] for t in d.truth)
+    bad = [pid for pid in d.sc.persons if not 2 <= per_person[pid] <= 5]
+    if bad:
+        raise RuntimeError(f"{len(bad)} persons outside 2-5 records (first: {bad[0]})")
+    return {
+        "families": len(d.sc.families),
+        "persons": len(d.sc.persons),
+        "records": len(d.truth),
+        "records_per_file": dict(Counter(t["source_file"] for t in d.truth)),
+        "records_per_person": dict(sorted(Counter(per_person.values()).items())),
+        "defects": dict(sorted(Counter(x["kind"] for x in d.w.defects).items())),
+        "roster": dict(Counter(r["status"] for r in roster)),
+    }
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description="Regenerate the fictional Northern March demo delivery.")
+    ap.add_argument("--out", default=str(HERE), help="output folder (default: the sample/ folder)")
+    ap.add_argument("--seed", type=int, default=SEED)
+    ap.add_argument("--families", type=int, default=N_FAMILIES)
+    ap.add_argument("--vocabulary", choices=sorted(VOCAB), default="demo")
+    args = ap.parse_args(argv)
+    summary = write_delivery(args.out, seed=args.seed, n_families=args.families, vocabulary=args.vocabulary)
+    print(json.dumps(summary, indent=2, ensure_ascii=False))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
