@@ -631,7 +631,7 @@ class Scenario:
                 continue
             new_dob = cb.dob.replace(year=ca.dob.year) if not (cb.dob.month == 2 and cb.dob.day == 29) \
                 else cb.dob.replace(year=ca.dob.year, day=28)
-            if new_dob >= b.intake or new_dob == ca.dob:
+            if new_dob >= b.intake or new_dob == ca.dob or (b.intake - new_dob).days > 17 * 365:
                 continue
             adults = [self.persons[x] for x in b.adults]
             if any(add_years(ad.dob, 15) > new_dob for ad in adults):
@@ -970,6 +970,7 @@ class Delivery:
             raise ValueError(f"vocabulary must be one of {', '.join(VOCAB)}, got {vocabulary!r}")
         self.out = Path(out_dir)
         self.mode = vocabulary
+        self.seed = seed
         self.vocab = VOCAB[vocabulary]
         self.sc = Scenario(seed, n_families)
         self.rows = plan_rows(self.sc, seed)
@@ -1074,7 +1075,7 @@ class Delivery:
                     put(ws, r, c, values.get(key), "dd/mm/yyyy")
                 r += 1
             ws.cell(row=r, column=1, value="Total")
-            ws.cell(row=r, column=2, value=len(rows))
+            ws.cell(row=r, column=len(cols), value=f"{len(rows)} entries")
         self.save_xlsx(wb, rel)
 
     # -- OMC placements ------------------------------------------------------------------
@@ -1291,9 +1292,10 @@ class Delivery:
 
     # -- roster and truth ---------------------------------------------------------------
     def write_roster(self) -> list[dict]:
-        rng = random.Random(f"{self.sc.rng.random()}-roster")  # noqa: S311 - seeded by the scenario stream
-        listed = [p for p in self.sc.persons.values() if rng.random() < 0.93]
-        missing = [p for p in self.sc.persons.values() if p not in listed]
+        rng = random.Random(f"{self.seed}-roster")
+        on_list = {pid: rng.random() < 0.93 for pid in self.sc.persons}
+        listed = [p for p in self.sc.persons.values() if on_list[p.pid]]
+        missing = [p for p in self.sc.persons.values() if not on_list[p.pid]]
         # a few class members no agency file mentions
         invented = []
         fake_fam = Family("F000", "hispanic", STATIONS[0], dt.date(2026, 1, 15))
