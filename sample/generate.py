@@ -1023,7 +1023,9 @@ class Delivery:
                 else [("parent", "full_name")]
             cols += [("parent", "birth_date"), ("parent", "sex"), ("event", "intake_date"),
                      ("event", "release_date"), ("event", "location"), ("unmapped", "remarks")]
-            header = [header_name(self.vocab, o, f, v, style) for o, f in cols]
+            event_v = {"location": 2, "release_date": 0 if v % 2 == 0 else 2}   # "Station", "Release date"
+            header = [header_name(self.vocab, o, f, event_v.get(f, v) if o == "event" else v, style)
+                      for o, f in cols]
             title = ("Northern March Holding Authority - custody log - " if self.mode == "demo"
                      else "NMHA holding book - ") + f"{sheet} station"
             ws.cell(row=1, column=1, value=title)

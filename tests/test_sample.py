@@ -1,0 +1,278 @@
+"""Checks of the generated demo delivery (sample/generate.py) and its ground truth."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import fnmatch
+import hashlib
+import io
+import re
+import tomllib
+import unicodedata
+import zipfile
+from collections import Counter
+from pathlib import Path
+
+import openpyxl
+import pytest
+
+from sample import generate
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample"
+DEMO_CONFIG = ROOT / "configs" / "sample.toml"
+IDENTITY = ("reg_no", "given_name", "family_name", "full_name", "birth_date", "age")
+EVENTS = ("intake_date", "placement_date", "release_date", "location", "status")
+
+
+def fold(text) -> str:
+    """Header folding as docs/config.md states it: case, accents, punctuation, spaces; '#' = 'no'."""
+    text = unicodedata.normalize("NFKD", str(text).replace("#", "no"))
+    text = "".join(ch for ch in text if not unicodedata.combining(ch)).lower()
+    return re.sub(r"[^0-9a-z]", "", text)
+
+
+def config_headers(cfg: dict) -> list[str]:
+    """Every header name a config lists (slots, fields, roster columns, slot columns and values)."""
+    names = []
+    for slot in cfg["slots"].values():
+        for lst in slot["columns"].values():
+            names += lst
+    for lst in cfg["fields"].values():
+        names += lst
+    for lst in cfg["roster"]["columns"].values():
+        names += lst
+    for rule in cfg.get("sheets", []):
+        if "slot_column" in rule:
+            names.append(rule["slot_column"])
+            names += list(rule["slot_values"])
+    return names
+
+
+def file_hashes(folder: Path) -> dict[str, str]:
+    return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def read_rows(path: Path, sheet: str) -> list[list]:
+    """Rows of a sheet (xlsx) or of a CSV file, from row 1, values as read."""
+    if path.suffix == ".csv":
+        data = path.read_bytes()
+        if data.startswith(b"\xef\xbb\xbf"):
+            text = data[3:].decode("utf-8")
+        else:
+            try:
+                text = data.decode("utf-8")
+            except UnicodeDecodeError:
+                text = data.decode("cp1252")
+        return list(csv.reader(io.StringIO(text, newline="")))
+    wb = openpyxl.load_workbook(path, read_only=True)
+    rows = [list(r) for r in wb[sheet].iter_rows(values_only=True)]
+    wb.close()
+    return rows
+
+
+class Vocab:
+    """Folded header -> (owner, field) from a config; owner is a slot, 'generic' or 'event'."""
+
+    def __init__(self, cfg: dict):
+        self.cfg = cfg
+        self.map: dict[str, tuple[str, str]] = {}
+        for slot, body in cfg["slots"].items():
+            for fld, lst in body["columns"].items():
+                for n in lst:
+                    self.map[fold(n)] = (slot, fld)
+        for fld, lst in cfg["fields"].items():
+            for n in lst:
+                self.map.setdefault(fold(n), ("event" if fld in EVENTS else "generic", fld))
+
+    def rule(self, source_file: str, sheet: str) -> dict:
+        """The first matching sheet rule naming a slot or slot column (or {})."""
+        name = source_file.rsplit("/", 1)[-1]
+        for rule in self.cfg.get("sheets", []):
+            if (fnmatch.fnmatch(name, rule["file"]) or fnmatch.fnmatch(source_file, rule["file"])) and \
+                    fnmatch.fnmatch(sheet, rule.get("sheet", "*")) and ("slot" in rule or "slot_column" in rule):
+                return rule
+        return {}
+
+
+def blank(v) -> bool:
+    return v is None or str(v).strip() == ""
+
+
+def slot_cells(vocab: Vocab, rule: dict, header: list, row: list) -> dict[str, list]:
+    """Identity values per slot on a row, using the config's vocabulary and sheet rule."""
+    out: dict[str, list] = {}
+    slot_col = fold(rule["slot_column"]) if "slot_column" in rule else None
+    row_slot = rule.get("slot")
+    if slot_col:
+        idx = [fold(h) for h in header].index(slot_col)
+        row_slot = rule["slot_values"].get(str(row[idx]).strip().lower())
+    for c, h in enumerate(header):
+        owner, fld = vocab.map.get(fold(h), ("", ""))
+        if fld not in IDENTITY or c >= len(row):
+            continue
+        slot = row_slot if owner == "generic" else owner
+        if slot:
+            out.setdefault(slot, []).append(row[c])
+    return out
+
+
+def check_truth_exact(out_dir: Path, config_path: Path):
+    """Every truth row names a slot with person data, and every such slot is in the truth."""
+    cfg = tomllib.loads(config_path.read_text(encoding="utf-8"))
+    vocab = Vocab(cfg)
+    delivery = (config_path.parent / cfg["delivery"]["folder"]).resolve()
+    with open(out_dir / "truth" / "records.csv", encoding="utf-8", newline="") as fh:
+        truth = list(csv.DictReader(fh))
+    assert len(truth) > 500
+    expected = {(t["source_file"], t["sheet"], int(t["row"]), t["slot"]) for t in truth}
+    assert len(expected) == len(truth), "truth lists a person slot twice"
+    found = set()
+    sheets = sorted({(t["source_file"], t["sheet"]) for t in truth})
+    for source_file, sheet in sheets:
+        rows = read_rows(delivery / source_file, sheet)
+        scores = [sum(fold(v) in vocab.map for v in r if not blank(v)) for r in rows[:30]]
+        h = scores.index(max(scores))
+        header = rows[h]
+        assert max(scores) >= 3, f"{source_file}/{sheet}: no header row"
+        rule = vocab.rule(source_file, sheet)
+        for i in range(h + 1, len(rows)):
+            row = list(rows[i])
+            if all(blank(v) for v in row) or [fold(v) for v in row] == [fold(v) for v in header]:
+                continue
+            if fold(next(v for v in row if not blank(v))).startswith("total"):
+                continue
+            for slot, values in slot_cells(vocab, rule, header, row).items():
+                if any(not blank(v) for v in values):
+                    found.add((source_file, sheet, i + 1, slot))
+    missing = sorted(expected - found)
+    extra = sorted(found - expected)
+    assert not missing, f"truth rows without person data in the file, e.g. {missing[:3]}"
+    assert not extra, f"person slots in the files that truth does not list, e.g. {extra[:3]}"
+
+
+def test_regeneration_is_byte_identical(tmp_path):
+    """Two runs with the same seed write byte-identical files, equal to the committed sample."""
+    a, b = tmp_path / "a", tmp_path / "b"
+    generate.write_delivery(a)
+    generate.write_delivery(b)
+    ha, hb = file_hashes(a), file_hashes(b)
+    assert len(ha) >= 12 and ha == hb
+    # the committed sample is what the generator writes (xlsx compared member by member,
+    # so a different zlib build cannot make this fail)
+    for rel in ha:
+        mine, committed = a / rel, SAMPLE / rel
+        assert committed.is_file(), f"sample/{rel} is not committed; run python sample/generate.py"
+        if rel.endswith(".xlsx"):
+            za, zc = zipfile.ZipFile(mine), zipfile.ZipFile(committed)
+            assert za.namelist() == zc.namelist(), rel
+            for name in za.namelist():
+                assert za.read(name) == zc.read(name), f"sample/{rel} member {name} is stale"
+        else:
+            assert mine.read_bytes() == committed.read_bytes(), f"sample/{rel} is stale"
+
+
+def test_other_seed_changes_the_delivery(tmp_path):
+    """The seed is really used: another seed gives other truth."""
+    generate.write_delivery(tmp_path / "x", seed=1, n_families=40)
+    generate.write_delivery(tmp_path / "y", seed=2, n_families=40)
+    assert (tmp_path / "x/truth/persons.csv").read_bytes() != (tmp_path / "y/truth/persons.csv").read_bytes()
+
+
+def test_committed_truth_points_at_person_cells():
+    """Every truth row of the committed sample is a row/slot with non-empty person cells, and vice versa."""
+    check_truth_exact(SAMPLE, DEMO_CONFIG)
+
+
+def test_alternate_truth_points_at_person_cells(tmp_path):
+    """The alternate delivery, read with its own alternate.toml, matches its truth exactly."""
+    generate.write_delivery(tmp_path, n_families=80, vocabulary="alternate")
+    check_truth_exact(tmp_path, tmp_path / "alternate.toml")
+
+
+def test_luhn_reference_value():
+    """Luhn check digit of 7992739871 is 3 (REFERENCES.md section 8; Wikipedia text, read-2)."""
+    assert generate.luhn_check_digit("7992739871") == "3"
+    assert generate.luhn_valid("79927398713")
+    assert not generate.luhn_valid("79927398712")
+
+
+def test_persons_register_numbers_are_valid_luhn():
+    """True register numbers: 8 digits, unique, Luhn-valid, many with a leading zero."""
+    with open(SAMPLE / "truth" / "persons.csv", encoding="utf-8", newline="") as fh:
+        persons = list(csv.DictReader(fh))
+    regs = [p["reg_no"] for p in persons]
+    assert len(regs) > 1000
+    assert all(len(r) == 8 and r.isdigit() for r in regs)
+    assert len(set(regs)) == len(regs)
+    assert all(generate.luhn_valid(r) for r in regs)
+    assert sum(r.startswith("0") for r in regs) / len(regs) > 0.3
+
+
+def test_scenario_shape():
+    """2-5 records per person, parents 15+ years older than their children, twins and namesakes exist."""
+    def load(name):
+        with open(SAMPLE / "truth" / name, encoding="utf-8", newline="") as fh:
+            return list(csv.DictReader(fh))
+    persons = {p["person_id"]: p for p in load("persons.csv")}
+    per_person = Counter(t["person_id"] for t in load("records.csv"))
+    assert set(per_person) == set(persons)
+    assert min(per_person.values()) == 2 and max(per_person.values()) == 5
+    rel = load("relations.csv")
+    assert len(rel) > len([p for p in persons.values() if p["role"] == "child"])
+    for r in rel:
+        child = dt.date.fromisoformat(persons[r["child_person_id"]]["birth_date"])
+        adult = dt.date.fromisoformat(persons[r["parent_person_id"]]["birth_date"])
+        assert (child - adult).days >= 15 * 365
+    kids = [p for p in persons.values() if p["role"] == "child"]
+    by_family_dob = Counter((p["family_id"], p["birth_date"]) for p in kids)
+    assert any(n >= 2 for n in by_family_dob.values()), "no twins"
+    names = {}
+    for p in persons.values():
+        names.setdefault((p["given_name"], p["family_name"], p["birth_date"][:4]), set()).add(p["family_id"])
+    assert sum(len(f) >= 2 for f in names.values()) >= 5, "too few namesakes across families"
+    roster = load("roster.csv")
+    status = Counter(r["status"] for r in roster)
+    assert status["roster only"] >= 3 and status["not on roster"] >= 10 and status["listed"] > 900
+
+
+def test_csv_encodings():
+    """The tracing file is cp1252 (not UTF-8) and keeps accents; the station files carry a UTF-8 BOM."""
+    data = (SAMPLE / "delivery" / "family_tracing_2026.csv").read_bytes()
+    with pytest.raises(UnicodeDecodeError):
+        data.decode("utf-8")
+    assert "é" in data.decode("cp1252") or "ñ" in data.decode("cp1252")
+    stations = sorted((SAMPLE / "delivery" / "stations").glob("*.csv"))
+    assert len(stations) == 2
+    assert all(p.read_bytes().startswith(b"\xef\xbb\xbf") for p in stations)
+
+
+def test_alternate_vocabulary_shares_no_header_with_demo_config(tmp_path):
+    """No folded header name of alternate.toml is one configs/sample.toml lists."""
+    generate.write_delivery(tmp_path, n_families=20, vocabulary="alternate")
+    demo = {fold(n) for n in config_headers(tomllib.loads(DEMO_CONFIG.read_text(encoding="utf-8")))}
+    alt_cfg = tomllib.loads((tmp_path / "alternate.toml").read_text(encoding="utf-8"))
+    alt = {fold(n) for n in config_headers(alt_cfg)}
+    assert len(demo) > 50 and len(alt) > 50
+    assert demo.isdisjoint(alt), sorted(demo & alt)
+    # and the alternate files really use those headers: no header cell folds to a demo name
+    used = set()
+    for path in sorted((tmp_path / "delivery").rglob("*")):
+        if path.suffix == ".csv":
+            sheets = [read_rows(path, "")]
+        elif path.suffix == ".xlsx":
+            wb = openpyxl.load_workbook(path, read_only=True)
+            names = wb.sheetnames
+            wb.close()
+            sheets = [read_rows(path, name) for name in names]
+        else:
+            continue
+        for rows in sheets:
+            if not rows:
+                continue
+            scores = [sum(fold(v) in alt for v in r if not blank(v)) for r in rows[:30]]
+            used |= {fold(v) for v in rows[scores.index(max(scores))] if not blank(v)}
+    assert len(used & alt) >= 40
+    assert not (used & demo), sorted(used & demo)
