@@ -549,9 +549,9 @@ def normalize_reg_no(value, scheme: IdScheme = IdScheme()) -> RegNo:
     Examples
     --------
     >>> s = IdScheme(digits=8, prefixes=("HR",), check_digit="luhn")
-    >>> normalize_reg_no("HR-0412-3385", s).reg_no
-    '04123385'
-    >>> normalize_reg_no(4123385, s).note
+    >>> normalize_reg_no("HR-0412-3386", s)
+    RegNo(reg_no='04123386', prefix='HR', status='valid', note='')
+    >>> normalize_reg_no(4123386, s).note
     'leading zeros restored'
     """
     if isinstance(value, str):
@@ -1312,11 +1312,16 @@ def _whole(x: float) -> int | None:
     return int(r) if abs(x - r) < 1e-9 else None
 
 
+def _whole_days(months: float) -> int:
+    """Fewest whole days of age that reach ``months`` (of 30.4375 days)."""
+    return math.ceil(round(months * _DAYS_PER_MONTH, 6))
+
+
 def _latest_birth(as_of: dt.date, low: float) -> dt.date:
     """Latest birth date whose age at ``as_of`` is at least ``low`` months."""
     months = _whole(low)
     if months is None:
-        return as_of - dt.timedelta(days=round(low * _DAYS_PER_MONTH))
+        return as_of - dt.timedelta(days=_whole_days(low))
     born = _add_months(as_of, -months)
     one = dt.timedelta(days=1)
     while _add_months(born + one, months) <= as_of:   # month-end clamping
@@ -1329,7 +1334,7 @@ def _earliest_birth(as_of: dt.date, high: float) -> dt.date:
     months = _whole(high)
     one = dt.timedelta(days=1)
     if months is None:
-        return as_of - dt.timedelta(days=round(high * _DAYS_PER_MONTH)) + one
+        return as_of - dt.timedelta(days=_whole_days(high)) + one
     born = _add_months(as_of, -months) + one
     while _add_months(born, months) <= as_of:          # month-end clamping
         born += one
@@ -1353,7 +1358,9 @@ def age_to_birth_range(age_range_months, as_of: dt.date) -> tuple[str, str]:
         plus one day, latest = ``as_of`` minus ``low``.  Whole months are
         calendar months (a month back from 31 March is 28/29 February; the
         bounds are then moved over the days that month-end clamping makes
-        equivalent), fractional months are days of 30.4375 days.  ``("", "")``
+        equivalent).  Fractional months are read as days (months of 30.4375
+        days, ages counted in whole days); a range holding no whole day
+        gives the one nearest day as both bounds.  ``("", "")``
         for ``None``; a bound before year 1 is ``""``.
 
     Examples
@@ -1374,4 +1381,6 @@ def age_to_birth_range(age_range_months, as_of: dt.date) -> tuple[str, str]:
             out.append(fn(as_of, float(bound)).isoformat())
         except (OverflowError, ValueError):
             out.append("")
+    if out[0] and out[1] and out[0] > out[1]:   # a range narrower than one day
+        out[0] = out[1]
     return out[0], out[1]
