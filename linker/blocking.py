@@ -107,6 +107,14 @@ DEFAULT_PERSON_RULES = (
 )
 
 
+def _unique(x: np.ndarray) -> np.ndarray:
+    """Sorted distinct values by sorting (numpy 2's hash-based ``np.unique`` is far slower on int64 keys)."""
+    x = np.sort(np.asarray(x).ravel())
+    if x.size == 0:
+        return x
+    return x[np.concatenate(([True], x[1:] != x[:-1]))]
+
+
 # ---------------------------------------------------------------------------
 # integer-coded keys
 # ---------------------------------------------------------------------------
@@ -379,9 +387,9 @@ def block(records: pd.DataFrame, rules: Sequence[BlockRule], *, return_capped: b
     for k, rule in enumerate(rules):
         left, right, capped = _RUNNERS[rule.kind](records, rule)
         lo, hi = _canonical(left, right)
-        key = np.unique(lo * n + hi)
-        new = np.setdiff1d(key, seen, assume_unique=True)
-        seen = np.union1d(seen, key)
+        key = _unique(lo * n + hi)
+        new = key[~np.isin(key, seen, assume_unique=True)] if seen.size else key
+        seen = _unique(np.concatenate([seen, key]))
         keys.append(key)
         bits.append(np.full(key.size, 1 << k, dtype=np.int64))
         rows.append({"rule": rule.name, "kind": rule.kind, "pairs": int(key.size), "new_pairs": int(new.size),
@@ -397,9 +405,11 @@ def block(records: pd.DataFrame, rules: Sequence[BlockRule], *, return_capped: b
     else:
         all_keys = np.zeros(0, dtype=np.int64)
         all_bits = np.zeros(0, dtype=np.int64)
-    uniq, inverse = np.unique(all_keys, return_inverse=True)
-    mask = np.zeros(uniq.size, dtype=np.int64)
-    np.bitwise_or.at(mask, inverse, all_bits)
+    order = np.argsort(all_keys, kind="stable")
+    sk, sb = all_keys[order], all_bits[order]
+    start = np.flatnonzero(np.concatenate(([True], sk[1:] != sk[:-1]))) if sk.size else np.zeros(0, dtype=np.int64)
+    uniq = sk[start]
+    mask = np.bitwise_or.reduceat(sb, start) if sk.size else np.zeros(0, dtype=np.int64)
     pairs = pd.DataFrame({"left": uniq // max(n, 1), "right": uniq % max(n, 1), "rules": mask})
     rows.append({"rule": "(union)", "kind": "", "pairs": int(uniq.size), "new_pairs": int(uniq.size),
                  "capped_blocks": sum(r["capped_blocks"] for r in rows),

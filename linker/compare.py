@@ -25,9 +25,10 @@ Field kinds and their levels (after ``missing``):
     ``exact``, ``jw_high``, [``part``], ``jw_medium``, ``swapped``,
     ``phonetic``, ``different``.  ``part`` (only with ``parts=True``, for
     family names) = the two names share a whole name part and one has several
-    parts ("GARCIA LOPEZ" / "GARCIA").  ``swapped`` = the value equals the other
-    side's ``swap_column`` (given <-> family) or the order-free ``key_column``
-    values are equal.  ``phonetic`` = equal ``phonetic_column`` codes.
+    parts ("GARCIA LOPEZ" / "GARCIA").  ``swapped`` = the order-free
+    ``key_column`` values are equal, or the value equals the other side's
+    ``swap_column`` (given <-> family) while the remaining cross pair is missing
+    or at least ``medium``-similar (one shared word alone is no swap).  ``phonetic`` = equal ``phonetic_column`` codes.
 ``date``
     ``exact``, ``day_month_swapped``, ``one_component`` (exactly one of year,
     month, day differs), ``within_days`` (at most ``days`` apart),
@@ -65,6 +66,7 @@ __all__ = [
     "jaro_winkler",
     "field_to_dict",
     "field_from_dict",
+    "level_frame",
 ]
 
 # level names per kind (index = level code); AGREEMENT marks levels that are agreements
@@ -204,6 +206,14 @@ DEFAULT_PERSON_FIELDS = (
 )
 
 
+def _unique(x: np.ndarray) -> np.ndarray:
+    """Sorted distinct values by sorting (numpy 2's hash-based ``np.unique`` is far slower on int64 keys)."""
+    x = np.sort(np.asarray(x).ravel())
+    if x.size == 0:
+        return x
+    return x[np.concatenate(([True], x[1:] != x[:-1]))]
+
+
 # ---------------------------------------------------------------------------
 # similarity
 # ---------------------------------------------------------------------------
@@ -254,9 +264,31 @@ def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
 
 def _tuple_codes(parts: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
     """Factorize rows of several aligned object arrays; returns (codes, first row of each code)."""
-    frame = pd.DataFrame({i: p for i, p in enumerate(parts)})
-    codes = frame.groupby(list(frame.columns), sort=False, dropna=False).ngroup().to_numpy(dtype=np.int64)
-    _, first = np.unique(codes, return_index=True)
+    return _row_codes(np.stack([_codes_blank(p)[0] for p in parts], axis=1))
+
+
+def _codes_blank(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Integer codes of strings in first-seen order, -1 for ""; and the distinct non-empty strings."""
+    codes, uniques = pd.factorize(pd.Series(values, dtype=object))
+    codes = codes.astype(np.int64)
+    uniques = np.asarray(uniques, dtype=object)
+    empty = np.flatnonzero(uniques == "")
+    if empty.size:
+        e = empty[0]
+        codes = np.where(codes == e, -1, np.where(codes > e, codes - 1, codes))
+        uniques = np.delete(uniques, e)
+    return codes, uniques
+
+
+def _row_codes(parts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Code per distinct row of a small-integer matrix (codes in first-seen order) and each code's first row."""
+    key = parts[:, 0] + 1
+    for c in range(1, parts.shape[1]):
+        col = parts[:, c] + 1
+        key = pd.factorize(key * (int(col.max()) + 1 if col.size else 1) + col)[0].astype(np.int64)
+    codes = pd.factorize(key)[0].astype(np.int64) if parts.shape[1] == 1 else key
+    first = np.full(int(codes.max()) + 1 if codes.size else 0, -1, dtype=np.int64)
+    first[codes[::-1]] = np.arange(codes.size - 1, -1, -1)
     return codes, first
 
 
@@ -274,12 +306,21 @@ def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
     if kind == "reg_no":
         value = np.where(_flag(records, f.flag_column), "", value).astype(object)
     if kind == "name":
-        extra = [_text(records, c) if c else np.full(len(records), "", dtype=object)
-                 for c in (f.swap_column, f.key_column, f.phonetic_column)]
-        codes, first = _tuple_codes([value] + extra)
-        vals = [p[first] for p in [value] + extra]
-        codes = np.where(value == "", -1, codes)
-        return _Table(codes, {"value": vals[0], "other": vals[1], "key": vals[2], "phon": vals[3]})
+        n = len(records)
+        other = _text(records, f.swap_column) if f.swap_column else np.full(n, "", dtype=object)
+        key = _text(records, f.key_column) if f.key_column else np.full(n, "", dtype=object)
+        phon = _text(records, f.phonetic_column) if f.phonetic_column else np.full(n, "", dtype=object)
+        # value and other name part share one vocabulary so that given <-> family can be compared as codes
+        vo, vocab = _codes_blank(np.concatenate([value, other]))
+        vcode, ocode = vo[:n], vo[n:]
+        kcode, _ = _codes_blank(key)
+        pcode, _ = _codes_blank(phon)
+        parts = np.stack([vcode, ocode, kcode, pcode], axis=1)
+        tuples, first = _row_codes(parts)
+        codes = np.where(vcode < 0, -1, tuples)
+        at = parts[first]
+        return _Table(codes, {"vcode": at[:, 0], "ocode": at[:, 1], "kcode": at[:, 2], "pcode": at[:, 3],
+                              "vocab": vocab})
     if kind == "date":
         lo = _text(records, f.range_columns[0]) if f.range_columns else np.full(len(records), "", dtype=object)
         hi = _text(records, f.range_columns[1]) if f.range_columns else np.full(len(records), "", dtype=object)
@@ -290,12 +331,7 @@ def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
         codes = np.where(missing_code[codes], -1, codes)
         return _Table(codes, attrs)
     # single-value kinds
-    codes, uniques = pd.factorize(pd.Series(value, dtype=object))
-    codes = codes.astype(np.int64)
-    uniques = np.asarray(uniques, dtype=object)
-    empty = np.flatnonzero(uniques == "")
-    if empty.size:
-        codes = np.where(codes == empty[0], -1, codes)
+    codes, uniques = _codes_blank(value)
     return _Table(codes, {"value": uniques})
 
 
@@ -365,30 +401,53 @@ def _token_codes(values: np.ndarray, max_tokens: int = 6) -> tuple[np.ndarray, n
     return mat, counts
 
 
+def _jw_codes(vocab: np.ndarray, ca: np.ndarray, cb: np.ndarray) -> np.ndarray:
+    """Jaro-Winkler of vocabulary codes (both >= 0), computed once per distinct code pair."""
+    if ca.size == 0:
+        return np.zeros(0, dtype=np.float64)
+    width = np.int64(max(vocab.size, 1))
+    key = np.minimum(ca, cb) * width + np.maximum(ca, cb)
+    uniq = _unique(key)
+    sim = jaro_winkler(vocab[uniq // width], vocab[uniq % width])
+    return sim[np.searchsorted(uniq, key)]
+
+
 def _score_name(t: _Table, f, a, b):
     at = t.attrs
-    va, vb = at["value"][a], at["value"][b]
+    va, vb = at["vcode"][a], at["vcode"][b]
     exact = va == vb
-    jw = jaro_winkler(va, vb)
+    jw = _jw_codes(at["vocab"], va, vb)
     conds = [exact, jw >= f.high]
     if f.parts:
         part = np.zeros(a.size, dtype=bool)
         if "tokens" not in at:
-            at["tokens"], at["ntok"] = _token_codes(at["value"])
-        multi = (at["ntok"][a] > 1) | (at["ntok"][b] > 1)
+            at["tokens"], at["ntok"] = _token_codes(at["vocab"])
+        multi = (at["ntok"][va] > 1) | (at["ntok"][vb] > 1)
         idx = np.flatnonzero(multi)
         if idx.size:
-            ta, tb = at["tokens"][a[idx]], at["tokens"][b[idx]]
+            ta, tb = at["tokens"][va[idx]], at["tokens"][vb[idx]]
             share = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
             part[idx] = share
         conds.append(part)
     conds.append(jw >= f.medium)
-    oa, ob = at["other"][a], at["other"][b]
-    ka, kb = at["key"][a], at["key"][b]
-    swapped = ((va == ob) & (ob != "")) | ((oa == vb) & (oa != "")) | ((ka == kb) & (ka != ""))
+    oa, ob = at["ocode"][a], at["ocode"][b]
+    ka, kb = at["kcode"][a], at["kcode"][b]
+    # a swap: this value equals the other side's other part, and the remaining cross pair is missing
+    # or at least medium-similar (one shared word alone is not a swap); or equal order-free keys
+    cross_ab = (va == ob) & (ob >= 0)
+    cross_ba = (oa == vb) & (oa >= 0)
+    swapped = (ka == kb) & (ka >= 0)
+    for hit, x, y in ((cross_ab, oa, vb), (cross_ba, va, ob)):
+        idx = np.flatnonzero(hit & ~swapped)
+        if idx.size:
+            xi, yi = x[idx], y[idx]
+            ok = (xi < 0) | (yi < 0)
+            both = np.flatnonzero(~ok)
+            ok[both] = _jw_codes(at["vocab"], xi[both], yi[both]) >= f.medium
+            swapped[idx[ok]] = True
     conds.append(swapped)
-    pa, pb = at["phon"][a], at["phon"][b]
-    conds.append((pa == pb) & (pa != ""))
+    pa, pb = at["pcode"][a], at["pcode"][b]
+    conds.append((pa == pb) & (pa >= 0))
     return _first_true(conds, a.size, len(f.levels) - 1)
 
 
@@ -477,8 +536,8 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
         # pass 1: the distinct value pairs over all chunks
         uniq = np.zeros(0, dtype=np.int64)
         for s in range(0, n_pairs, step):
-            k = np.unique(chunk_keys(s))
-            uniq = np.union1d(uniq, k[k >= 0])
+            k = _unique(chunk_keys(s))
+            uniq = _unique(np.concatenate([uniq, k[k >= 0]]))
         # score each distinct value pair once
         levels = _SCORERS[f.kind](table, f, uniq // width, uniq % width) if uniq.size \
             else np.zeros(0, dtype=np.int8)

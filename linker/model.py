@@ -64,7 +64,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
@@ -72,7 +72,7 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare, field_from_dict, field_to_dict
+from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, _unique, compare, field_from_dict, field_to_dict
 
 __all__ = ["Guard", "FellegiSunter", "DEFAULT_PERSON_GUARDS", "em_fit", "pattern_counts",
            "random_pairs", "NotFittedError"]
@@ -129,7 +129,16 @@ def pattern_counts(levels: np.ndarray, weights: np.ndarray | None = None):
     levels = np.asarray(levels)
     if levels.shape[0] == 0:
         return levels.reshape(0, levels.shape[1] if levels.ndim == 2 else 0), np.zeros(0)
-    patterns, inverse = np.unique(levels, axis=0, return_inverse=True)
+    levels = levels.astype(np.int64)
+    radix = levels.max(axis=0) + 1
+    if np.sum(np.log2(np.maximum(radix, 2))) < 62:
+        # rows as one mixed-radix int64 key: a 1-d sort instead of a row-wise one
+        place = np.concatenate(([1], np.cumprod(radix[::-1])[:-1]))[::-1]
+        key = levels @ place
+        keys, inverse = np.unique(key, return_inverse=True)
+        patterns = (keys[:, None] // place[None, :]) % radix[None, :]
+    else:
+        patterns, inverse = np.unique(levels, axis=0, return_inverse=True)
     inverse = np.asarray(inverse).ravel()
     if weights is None:
         counts = np.bincount(inverse, minlength=patterns.shape[0]).astype(np.float64)
@@ -166,6 +175,8 @@ def em_fit(patterns: np.ndarray, counts: np.ndarray, n_levels: Sequence[int], m0
     total = counts.sum()
     converged = False
     n_iter = 0
+    if max_iter < 0:
+        raise ValueError(f"em_fit: max_iter must be >= 0, got {max_iter}")
     for n_iter in range(1, max_iter + 1):
         z = np.full(patterns.shape[0], math.log(p) - math.log1p(-p))
         for f in range(n_fields):
@@ -246,7 +257,8 @@ class FellegiSunter:
         Set the weight of an agreement level (or value) whose m <= u to 0.
     guards : sequence of Guard
     floor : float
-        Smallest probability kept for any level (keeps logs finite).
+        Smallest m or u kept for any level (default 1e-6), so one level seen
+        in no matching pair weighs about -20, not minus infinity.
 
     Attributes
     ----------
@@ -262,7 +274,7 @@ class FellegiSunter:
                  m_start: dict | None = None, u_start: dict | None = None, em_pairs: str = "all",
                  update_u: bool = False, u_sample: int = 200_000, seed: int = 0, max_iter: int = 1000,
                  tol: float = 1e-6, tf_fields: Sequence[str] | None = None, clamp_agreement: bool = True,
-                 guards: Sequence[Guard] = (), floor: float = 1e-9):
+                 guards: Sequence[Guard] = (), floor: float = 1e-6):
         self.fields = tuple(fields)
         self.prior = prior
         self.m_start = m_start
@@ -368,7 +380,7 @@ class FellegiSunter:
 
         # EM data: pattern counts
         if self.em_pairs == "all":
-            cand_key = np.unique(left * max(n, 1) + right)
+            cand_key = _unique(left * max(n, 1) + right)
             rkey = rl * max(n, 1) + rr
             pos = np.searchsorted(cand_key, rkey)
             is_cand = (pos < cand_key.size) & (cand_key[np.minimum(pos, max(cand_key.size - 1, 0))] == rkey) \
@@ -389,7 +401,9 @@ class FellegiSunter:
         m, u, p, n_iter, converged = em_fit(patterns, counts, n_levels, m0, u0, p0, update_u=self.update_u,
                                             max_iter=int(self.max_iter), tol=float(self.tol),
                                             floor=float(self.floor))
-        if not converged:
+        if int(self.max_iter) == 0:
+            warn.append("EM not run (max_iter=0): m and the prior are the stated starting values")
+        elif not converged:
             warn.append(f"EM did not converge in {n_iter} iterations (tol {self.tol})")
 
         self.m_, self.u_, self.weights_ = {}, {}, {}
