@@ -24,6 +24,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from linker import load_config, run_pipeline  # noqa: E402
+from linker.normalize import luhn_check_digit  # noqa: E402
 
 GIVEN = ["ANA", "TOMAS", "LIDIA", "MARTA", "JOSE", "NGOZI", "OLU", "PIA", "RUI", "SEVE", "IKER",
          "DALIA", "EMRE", "FARAH", "GIO", "HANA", "IVO", "JUNO", "KAI", "LENA"]
@@ -66,20 +67,8 @@ parent = "parent"
 """
 
 
-def _luhn(payload: str) -> str:
-    total = 0
-    for i, ch in enumerate(reversed(payload)):
-        d = int(ch)
-        if i % 2 == 0:
-            d *= 2
-            if d > 9:
-                d -= 9
-        total += d
-    return str((10 - total % 10) % 10)
-
-
 def _row(rng: random.Random):
-    reg = lambda: (p := f"{rng.randrange(10**7):07d}") + _luhn(p)  # noqa: E731
+    reg = lambda: (p := f"{rng.randrange(10**7):07d}") + luhn_check_digit(p)  # noqa: E731
     born = dt.date(2008, 1, 1) + dt.timedelta(days=rng.randrange(6000))
     pborn = dt.date(1966, 1, 1) + dt.timedelta(days=rng.randrange(12000))
     intake = dt.date(2026, 1, 1) + dt.timedelta(days=rng.randrange(250))
@@ -121,7 +110,7 @@ def make_delivery(folder: Path, rows: int, seed: int = 7) -> Path:
     with open(base / "delivery" / "tracing.csv", "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
         w.writerow(HEADER)
-        for _ in range(rows - 2 * per_book - 1 + 1):
+        for _ in range(rows - 2 * per_book):
             w.writerow([c.isoformat() if isinstance(c, dt.date) else c for c in _row(rng)])
     cfg.write_text(textwrap.dedent(CONFIG), encoding="utf-8")
     return cfg

@@ -1,6 +1,6 @@
 """Tests for linker.normalize: per-value normalizers.
 
-Source tags follow /work/shared/REFERENCES.md: read = seen in the source;
+Source tags follow ../shared/REFERENCES.md (beside the repository): read = seen in the source;
 read-2 = seen as quoted by a secondary source; derived = worked by hand from
 rules that were read; from memory = not seen; common practice = a habit of
 the trade, not a published value.
