@@ -18,15 +18,19 @@ Field kinds and their levels (after ``missing``):
 
 ``reg_no``
     ``exact``, ``one_edit`` (optimal string alignment distance 1: one
-    substitution, insertion, deletion or adjacent swap), ``different``.  When
-    ``flag_column`` is set and present, a record whose flag is true (the row
-    shows the same number for both of its persons) counts as missing.
+    substitution, insertion, deletion or adjacent swap), [``different_unverified``],
+    ``different``.  ``different_unverified`` (only with ``status_column``) =
+    further apart, and at least one of the two failed its length or check-digit
+    validation.  When ``flag_column`` is set and present, a record whose flag
+    is true (the row shows the same number for both of its persons) counts as
+    missing.
 ``name``
     ``exact``, ``jw_high``, [``part``], ``jw_medium``, ``swapped``,
     ``phonetic``, ``different``.  ``part`` (only with ``parts=True``, for
     family names) = the two names share a whole name part and one has several
     parts ("GARCIA LOPEZ" / "GARCIA").  ``swapped`` = the order-free
-    ``key_column`` values are equal, or the value equals the other side's
+    ``key_column`` values are equal or one holds every token (two or more) of
+    the other, or the value equals the other side's
     ``swap_column`` (given <-> family) while the remaining cross pair is missing
     or at least ``medium``-similar (one shared word alone is no swap).  ``phonetic`` = equal ``phonetic_column`` codes.
 ``date``
@@ -72,6 +76,7 @@ __all__ = [
 # level names per kind (index = level code); AGREEMENT marks levels that are agreements
 LEVELS: dict[str, tuple[str, ...]] = {
     "reg_no": ("missing", "exact", "one_edit", "different"),
+    "reg_no_checked": ("missing", "exact", "one_edit", "different_unverified", "different"),
     "name": ("missing", "exact", "jw_high", "jw_medium", "swapped", "phonetic", "different"),
     "name_parts": ("missing", "exact", "jw_high", "part", "jw_medium", "swapped", "phonetic", "different"),
     "date": ("missing", "exact", "day_month_swapped", "one_component", "within_days",
@@ -80,7 +85,7 @@ LEVELS: dict[str, tuple[str, ...]] = {
     "string": ("missing", "exact", "jw_high", "jw_medium", "different"),
     "exact": ("missing", "same", "different"),
 }
-DISAGREEMENT = frozenset({"missing", "different", "age_inconsistent"})
+DISAGREEMENT = frozenset({"missing", "different", "different_unverified", "age_inconsistent"})
 AGREEMENT = {k: tuple(name not in DISAGREEMENT for name in v) for k, v in LEVELS.items()}
 KINDS = ("reg_no", "name", "date", "sex", "string", "exact")
 
@@ -110,6 +115,12 @@ class FieldComparison:
         ``date`` kind: (earliest, latest) birth date consistent with a stated age.
     flag_column : str, optional
         ``reg_no`` kind: boolean column; a true flag makes the value count as missing.
+    status_column : str, optional
+        ``reg_no`` kind: validation status column (``valid`` when length and
+        check digit hold); adds the level ``different_unverified`` for
+        numbers more than one edit apart of which at least one failed
+        validation (a known-mangled number disagrees more weakly).  Optional:
+        records without the column count as valid.
     """
 
     name: str
@@ -124,6 +135,7 @@ class FieldComparison:
     parts: bool = False
     range_columns: tuple[str, ...] | None = None
     flag_column: str | None = None
+    status_column: str | None = None
 
     def __post_init__(self):
         if isinstance(self.columns, str):
@@ -148,7 +160,11 @@ class FieldComparison:
 
     @property
     def level_kind(self) -> str:
-        return "name_parts" if (self.kind == "name" and self.parts) else self.kind
+        if self.kind == "name" and self.parts:
+            return "name_parts"
+        if self.kind == "reg_no" and self.status_column:
+            return "reg_no_checked"
+        return self.kind
 
     @property
     def levels(self) -> tuple[str, ...]:
@@ -167,7 +183,7 @@ class FieldComparison:
         return self.levels.index(name)
 
     def required_columns(self) -> tuple[str, ...]:
-        """Columns that must be present (optional flag column excluded)."""
+        """Columns that must be present (optional flag and status columns excluded)."""
         cols = list(self.columns)
         for c in (self.swap_column, self.key_column, self.phonetic_column):
             if c:
@@ -196,7 +212,7 @@ def field_from_dict(d: dict) -> FieldComparison:
 
 # The person-record comparison set: identity evidence only (no event dates or places).
 DEFAULT_PERSON_FIELDS = (
-    FieldComparison("reg_no", "reg_no", ("reg_no",), flag_column="reg_no_shared"),
+    FieldComparison("reg_no", "reg_no", ("reg_no",), flag_column="reg_no_shared", status_column="reg_no_status"),
     FieldComparison("given_name", "name", ("given_name",), swap_column="family_name",
                     key_column="name_key", phonetic_column="given_soundex"),
     FieldComparison("family_name", "name", ("family_name",), swap_column="given_name",
@@ -305,6 +321,15 @@ def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
     value = _text(records, f.columns[0])
     if kind == "reg_no":
         value = np.where(_flag(records, f.flag_column), "", value).astype(object)
+        if f.status_column:
+            codes, uniques = _codes_blank(value)
+            if f.status_column not in records.columns:   # no status: every number counts as verified
+                return _Table(codes, {"value": uniques, "valid": np.ones(uniques.size, dtype=bool)})
+            valid = np.zeros(uniques.size, dtype=bool)
+            seen = codes >= 0
+            status = _text(records, f.status_column)
+            valid[codes[seen]] = status[seen] == "valid"   # status is a function of the value
+            return _Table(codes, {"value": uniques, "valid": valid})
     if kind == "name":
         n = len(records)
         other = _text(records, f.swap_column) if f.swap_column else np.full(n, "", dtype=object)
@@ -313,14 +338,14 @@ def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
         # value and other name part share one vocabulary so that given <-> family can be compared as codes
         vo, vocab = _codes_blank(np.concatenate([value, other]))
         vcode, ocode = vo[:n], vo[n:]
-        kcode, _ = _codes_blank(key)
+        kcode, kvocab = _codes_blank(key)
         pcode, _ = _codes_blank(phon)
         parts = np.stack([vcode, ocode, kcode, pcode], axis=1)
         tuples, first = _row_codes(parts)
         codes = np.where(vcode < 0, -1, tuples)
         at = parts[first]
         return _Table(codes, {"vcode": at[:, 0], "ocode": at[:, 1], "kcode": at[:, 2], "pcode": at[:, 3],
-                              "vocab": vocab})
+                              "vocab": vocab, "kvocab": kvocab})
     if kind == "date":
         lo = _text(records, f.range_columns[0]) if f.range_columns else np.full(len(records), "", dtype=object)
         hi = _text(records, f.range_columns[1]) if f.range_columns else np.full(len(records), "", dtype=object)
@@ -373,7 +398,10 @@ def _score_reg_no(t: _Table, f, a, b):
     va, vb = t.attrs["value"][a], t.attrs["value"][b]
     exact = a == b
     near = _osa(va, vb) <= 1
-    return _first_true([exact, near], a.size, 3)
+    if "valid" not in t.attrs:
+        return _first_true([exact, near], a.size, 3)
+    unverified = ~(t.attrs["valid"][a] & t.attrs["valid"][b])
+    return _first_true([exact, near, unverified], a.size, 4)
 
 
 def _score_string(t: _Table, f, a, b):
@@ -412,6 +440,31 @@ def _jw_codes(vocab: np.ndarray, ca: np.ndarray, cb: np.ndarray) -> np.ndarray:
     return sim[np.searchsorted(uniq, key)]
 
 
+def _key_subset(at: dict, ka: np.ndarray, kb: np.ndarray) -> np.ndarray:
+    """Order-free keys of which one holds every token (at least two) of the other.
+
+    Catches a full name split at the wrong place or a family name part
+    dropped ("BAEZ | NUNEZ NICOLAS" / "NICOLAS | BAEZ").
+    """
+    out = np.zeros(ka.size, dtype=bool)
+    idx = np.flatnonzero((ka >= 0) & (kb >= 0) & (ka != kb))
+    if idx.size == 0:
+        return out
+    if "ktokens" not in at:
+        at["ktokens"], at["kntok"] = _token_codes(at["kvocab"])
+    tok, ntok = at["ktokens"], at["kntok"]
+    width = np.int64(max(at["kvocab"].size, 1))
+    key = np.minimum(ka[idx], kb[idx]) * width + np.maximum(ka[idx], kb[idx])
+    uniq = _unique(key)
+    x, y = uniq // width, uniq % width
+    tx, ty = tok[x], tok[y]
+    in_y = ((tx[:, :, None] == ty[:, None, :]) | (tx[:, :, None] < 0)).any(axis=2).all(axis=1)
+    in_x = ((ty[:, :, None] == tx[:, None, :]) | (ty[:, :, None] < 0)).any(axis=2).all(axis=1)
+    hit = (in_y & (ntok[x] >= 2)) | (in_x & (ntok[y] >= 2))
+    out[idx] = hit[np.searchsorted(uniq, key)]
+    return out
+
+
 def _score_name(t: _Table, f, a, b):
     at = t.attrs
     va, vb = at["vcode"][a], at["vcode"][b]
@@ -437,6 +490,7 @@ def _score_name(t: _Table, f, a, b):
     cross_ab = (va == ob) & (ob >= 0)
     cross_ba = (oa == vb) & (oa >= 0)
     swapped = (ka == kb) & (ka >= 0)
+    swapped |= _key_subset(at, ka, kb)
     for hit, x, y in ((cross_ab, oa, vb), (cross_ba, va, ob)):
         idx = np.flatnonzero(hit & ~swapped)
         if idx.size:

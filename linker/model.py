@@ -56,8 +56,16 @@ is one of ``levels``, unless one of the ``unless`` (field, level) agreements
 holds.  :data:`DEFAULT_PERSON_GUARDS` caps pairs whose given names or birth
 dates are plainly different (not typo-close) at weight 0 unless their
 registration numbers agree exactly, so a twin or sibling with the same family
-name, place and birth date is never linked on those alone.  A third latent
-class for relatives is not implemented.
+name, place and birth date is never linked on those alone.  (d) With
+``classes=3`` EM fits a third latent class for close-but-different persons
+(namesakes, relatives; Larsen & Rubin 2001): it starts agreeing on the name
+fields (``relative_fields``) and like u elsewhere.  Without it, a delivery
+with many namesakes drives EM to put them in the match class, so m learns
+that a different registration number or birth date is common among matches
+and those disagreements lose their weight.  The third class is used only to
+estimate m and the prior; scoring stays the additive two-class weight
+``log2(m / u)`` with u from random pairs, so the per-field weights of
+:meth:`FellegiSunter.explain` still sum to the pair's weight.
 """
 
 from __future__ import annotations
@@ -74,7 +82,7 @@ from scipy.special import expit
 
 from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, _unique, compare, field_from_dict, field_to_dict
 
-__all__ = ["Guard", "FellegiSunter", "DEFAULT_PERSON_GUARDS", "em_fit", "pattern_counts",
+__all__ = ["Guard", "FellegiSunter", "DEFAULT_PERSON_GUARDS", "em_fit", "em_fit_relatives", "pattern_counts",
            "random_pairs", "NotFittedError"]
 
 FORMAT = "linker.fellegi_sunter/1"
@@ -207,6 +215,60 @@ def em_fit(patterns: np.ndarray, counts: np.ndarray, n_levels: Sequence[int], m0
     return m, u, p, n_iter, converged
 
 
+def em_fit_relatives(patterns: np.ndarray, counts: np.ndarray, n_levels: Sequence[int], m0, r0, u0,
+                     p0: float, q0: float, *, update_u: bool = False, max_iter: int = 1000, tol: float = 1e-6,
+                     floor: float = 1e-9):
+    """EM for a three-class mixture: same person, close-but-different person, unrelated pair.
+
+    The middle class (relatives, namesakes) shares names but not the person's
+    own identifiers; giving it a class of its own keeps it from being absorbed
+    into the match class, where it would teach m that a different
+    registration number or birth date is common among matches (three-class
+    mixtures: Larsen & Rubin 2001, JASA 96(453)).  Classes are conditionally
+    independent over fields, missing levels add nothing.  ``m0``, ``r0``,
+    ``u0`` are per-field arrays over levels 1..L-1; ``p0``, ``q0`` the starting
+    shares of the match and relative classes.  Returns
+    (m, r, u, p, q, n_iter, converged).
+    """
+    patterns = np.asarray(patterns, dtype=np.int64)
+    counts = np.asarray(counts, dtype=np.float64)
+    n_fields = patterns.shape[1]
+    if max_iter < 0:
+        raise ValueError(f"em_fit_relatives: max_iter must be >= 0, got {max_iter}")
+    if not (0 < p0 and 0 < q0 and p0 + q0 < 1):
+        raise ValueError(f"em_fit_relatives: need class shares p0, q0 > 0 with p0 + q0 < 1, got {p0}, {q0}")
+    theta = [[_normalize(np.asarray(x[f], dtype=np.float64), floor) for f in range(n_fields)]
+             for x in (m0, r0, u0)]
+    share = np.array([p0, q0, 1.0 - p0 - q0])
+    total = counts.sum()
+    free = (0, 1, 2) if update_u else (0, 1)
+    converged = False
+    n_iter = 0
+    for n_iter in range(1, max_iter + 1):
+        ll = np.tile(np.log(share), (patterns.shape[0], 1))
+        for c in range(3):
+            for f in range(n_fields):
+                ll[:, c] += np.concatenate(([0.0], np.log(theta[c][f])))[patterns[:, f]]
+        ll -= ll.max(axis=1, keepdims=True)
+        resp = np.exp(ll)
+        resp /= resp.sum(axis=1, keepdims=True)
+        w = counts[:, None] * resp
+        new_share = np.maximum(w.sum(axis=0) / total, 1e-300)
+        delta = float(np.max(np.abs(new_share - share) / share))
+        for c in free:
+            for f in range(n_fields):
+                L = int(n_levels[f])
+                v = _normalize(np.bincount(patterns[:, f], weights=w[:, c], minlength=L)[1:L], floor)
+                delta = max(delta, float(np.abs(v - theta[c][f]).max()))
+                theta[c][f] = v
+        share = new_share
+        if delta < tol:
+            converged = True
+            break
+    m, r, u = theta
+    return m, r, u, float(share[0]), float(share[1]), n_iter, converged
+
+
 def _default_m_start(f: FieldComparison) -> np.ndarray:
     """Agreement levels share 0.9 halving down the order; disagreement levels share 0.1."""
     agree = np.array(f.agreement[1:])
@@ -256,6 +318,12 @@ class FellegiSunter:
     clamp_agreement : bool
         Set the weight of an agreement level (or value) whose m <= u to 0.
     guards : sequence of Guard
+    classes : {2, 3}
+        Latent classes of EM: match / non-match, or with a third class for
+        close-but-different persons (see the module docstring).
+    relative_fields : sequence of str, optional
+        Fields on which the relatives class starts agreeing (default: the
+        ``name`` fields).
     floor : float
         Smallest m or u kept for any level (default 1e-6), so one level seen
         in no matching pair weighs about -20, not minus infinity.
@@ -264,6 +332,8 @@ class FellegiSunter:
     ----------
     m_, u_ : dict field -> ndarray over all levels (index 0 = missing, NaN)
     prior_ : float   match probability per pair of the fitted pair space
+    r_ : dict field -> ndarray   level distribution of the relatives class (``classes=3``; else empty)
+    relative_share_ : float      share of the relatives class (0 with two classes)
     weights_ : dict field -> ndarray of log2 weights per level (missing 0)
     tf_ : dict field -> dict value -> relative frequency
     n_iter_, converged_, warnings_ : EM report
@@ -274,7 +344,8 @@ class FellegiSunter:
                  m_start: dict | None = None, u_start: dict | None = None, em_pairs: str = "all",
                  update_u: bool = False, u_sample: int = 200_000, seed: int = 0, max_iter: int = 1000,
                  tol: float = 1e-6, tf_fields: Sequence[str] | None = None, clamp_agreement: bool = True,
-                 guards: Sequence[Guard] = (), floor: float = 1e-6):
+                 guards: Sequence[Guard] = (), floor: float = 1e-6, classes: int = 2,
+                 relative_fields: Sequence[str] | None = None):
         self.fields = tuple(fields)
         self.prior = prior
         self.m_start = m_start
@@ -289,6 +360,8 @@ class FellegiSunter:
         self.clamp_agreement = clamp_agreement
         self.guards = tuple(guards)
         self.floor = floor
+        self.classes = classes
+        self.relative_fields = None if relative_fields is None else tuple(relative_fields)
 
     # -- checks ------------------------------------------------------------
     def _check_settings(self):
@@ -299,6 +372,11 @@ class FellegiSunter:
             raise ValueError(f"FellegiSunter: em_pairs must be 'all' or 'candidates', got {self.em_pairs!r}")
         if self.prior is not None and not 0.0 < self.prior < 1.0:
             raise ValueError(f"FellegiSunter: prior must lie in (0, 1), got {self.prior!r}")
+        if self.classes not in (2, 3):
+            raise ValueError(f"FellegiSunter: classes must be 2 or 3, got {self.classes!r}")
+        for name in (self.relative_fields or ()):
+            if name not in names:
+                raise ValueError(f"FellegiSunter: relative_fields names unknown field {name!r}; fields: {names}")
         if int(self.u_sample) < 1:
             raise ValueError(f"FellegiSunter: u_sample must be >= 1, got {self.u_sample!r}")
         for name in (self.tf_fields or ()):
@@ -322,6 +400,11 @@ class FellegiSunter:
     def _check_fitted(self):
         if not hasattr(self, "m_"):
             raise NotFittedError("FellegiSunter is not fitted yet: call fit(records, pairs, levels) first")
+
+    def _relative_names(self) -> tuple[str, ...]:
+        if self.relative_fields is not None:
+            return self.relative_fields
+        return tuple(f.name for f in self.fields if f.kind == "name")
 
     def _tf_names(self) -> tuple[str, ...]:
         if self.tf_fields is not None:
@@ -398,15 +481,23 @@ class FellegiSunter:
         if patterns.shape[0] == 0:
             raise ValueError("FellegiSunter.fit: no pairs to fit on")
 
-        m, u, p, n_iter, converged = em_fit(patterns, counts, n_levels, m0, u0, p0, update_u=self.update_u,
-                                            max_iter=int(self.max_iter), tol=float(self.tol),
-                                            floor=float(self.floor))
+        if self.classes == 3:
+            rel = self._relative_names()
+            r0 = [m0[j] if f.name in rel else u0[j] for j, f in enumerate(fields)]
+            m, r, u, p, q, n_iter, converged = em_fit_relatives(
+                patterns, counts, n_levels, m0, r0, u0, p0, min(p0 * 3.0, 0.5 * (1.0 - p0)),
+                update_u=self.update_u, max_iter=int(self.max_iter), tol=float(self.tol), floor=float(self.floor))
+        else:
+            m, u, p, n_iter, converged = em_fit(patterns, counts, n_levels, m0, u0, p0, update_u=self.update_u,
+                                                max_iter=int(self.max_iter), tol=float(self.tol),
+                                                floor=float(self.floor))
+            r, q = None, 0.0
         if int(self.max_iter) == 0:
             warn.append("EM not run (max_iter=0): m and the prior are the stated starting values")
         elif not converged:
             warn.append(f"EM did not converge in {n_iter} iterations (tol {self.tol})")
 
-        self.m_, self.u_, self.weights_ = {}, {}, {}
+        self.m_, self.u_, self.weights_, self.r_ = {}, {}, {}, {}
         for j, f in enumerate(fields):
             mf = np.concatenate(([np.nan], m[j]))
             uf = np.concatenate(([np.nan], u[j]))
@@ -418,7 +509,10 @@ class FellegiSunter:
                     if self.clamp_agreement:
                         w[k] = 0.0
             self.m_[f.name], self.u_[f.name], self.weights_[f.name] = mf, uf, w
+            if r is not None:
+                self.r_[f.name] = np.concatenate(([np.nan], r[j]))
         self.prior_ = float(p)
+        self.relative_share_ = float(q)
         self.n_iter_ = int(n_iter)
         self.converged_ = bool(converged)
         self.warnings_ = warn
@@ -571,6 +665,8 @@ class FellegiSunter:
             "guards": [{"field": g.field, "levels": list(g.levels), "cap": float(g.cap),
                         "unless": [list(u) for u in g.unless]} for g in self.guards],
             "floor": float(self.floor),
+            "classes": int(self.classes),
+            "relative_fields": None if self.relative_fields is None else list(self.relative_fields),
         }
 
     def to_json(self, path) -> None:
@@ -587,6 +683,8 @@ class FellegiSunter:
                 "m_": {k: arr(v) for k, v in self.m_.items()},
                 "u_": {k: arr(v) for k, v in self.u_.items()},
                 "weights_": {k: arr(v) for k, v in self.weights_.items()},
+                "r_": {k: arr(v) for k, v in self.r_.items()},
+                "relative_share_": float(self.relative_share_),
                 "prior_": float(self.prior_), "n_iter_": self.n_iter_, "converged_": self.converged_,
                 "warnings_": list(self.warnings_), "n_records_": self.n_records_,
                 "n_candidates_": self.n_candidates_, "n_random_": self.n_random_, "pair_space_": self.pair_space_,
@@ -619,6 +717,8 @@ class FellegiSunter:
         model.m_ = {k: arr(v) for k, v in fit["m_"].items()}
         model.u_ = {k: arr(v) for k, v in fit["u_"].items()}
         model.weights_ = {k: arr(v) for k, v in fit["weights_"].items()}
+        model.r_ = {k: arr(v) for k, v in fit["r_"].items()}
+        model.relative_share_ = float(fit["relative_share_"])
         model.prior_ = float(fit["prior_"])
         model.n_iter_ = int(fit["n_iter_"])
         model.converged_ = bool(fit["converged_"])

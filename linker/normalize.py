@@ -687,6 +687,16 @@ def split_full_name(full, order: str = "given_first") -> tuple[str, str]:
     return " ".join(tokens[i + 1:]), " ".join(tokens[:i + 1])
 
 
+def _order_free_key(tokens: list[str]) -> str:
+    """Sorted distinct tokens without particles (all tokens when every one is a particle).
+
+    The same set whichever field a token sits in, so "VAN | DIJK SANNE" and
+    "SANNE | VAN DIJK" share the key "DIJK SANNE".
+    """
+    kept = set(tokens) - _PARTICLE_TOKENS
+    return " ".join(sorted(kept or set(tokens)))
+
+
 def normalize_name(given=None, family=None, full=None, full_order: str = "given_first") -> Name:
     """Normalize the name of one person.
 
@@ -725,7 +735,7 @@ def normalize_name(given=None, family=None, full=None, full_order: str = "given_
         family_name=f,
         given_key=" ".join(gk),
         family_key=" ".join(fk),
-        name_key=" ".join(sorted(set(gk) | set(fk))),
+        name_key=_order_free_key(g.split() + f.split()),
         given_soundex=_soundex(gk),
         family_soundex=_soundex(fk),
     )

@@ -105,7 +105,32 @@ def test_family_name_part_level():
         "family_name", "name", ("family_name",), swap_column="given_name", key_column="name_key",
         phonetic_column="family_soundex") for f in DEFAULT_PERSON_FIELDS]
     got2 = _level_names(recs, [(0, 1), (0, 2)], no_parts)["family_name"].tolist()
-    assert got2 == ["different", "swapped"]
+    # without the part level, a dropped family-name part still shows as a subset of the order-free key
+    assert got2 == ["swapped", "swapped"]
+
+
+def test_swapped_level_covers_a_full_name_split_at_the_wrong_place():
+    """One order-free key holding every token (two or more) of the other is 'swapped' on both name fields."""
+    recs = _persons([
+        _person(given="BAEZ", family="NUNEZ NICOLAS"),     # "Baez Nunez Nicolas" read as given-first
+        _person(given="NICOLAS", family="BAEZ"),
+        _person(given="ANA", family="RUIZ"),
+        _person(given="ANA", family="SOL"),               # one shared token only: no swap
+    ])
+    got = _level_names(recs, [(0, 1), (2, 3)])
+    assert got["given_name"].tolist() == ["swapped", "exact"]
+    assert got["family_name"].tolist() == ["swapped", "different"]
+
+
+def test_reg_no_different_unverified_when_a_number_failed_validation():
+    """Numbers two or more edits apart: 'different' when both are valid, 'different_unverified' otherwise."""
+    recs = _persons([_person("12345678"), _person("87654321"), _person("87654399")])
+    recs["reg_no_status"] = ["valid", "valid", "check_failed"]
+    got = _level_names(recs, [(0, 1), (0, 2), (1, 2)])["reg_no"].tolist()
+    assert got == ["different", "different_unverified", "different_unverified"]
+    # without the status column every number counts as verified
+    got2 = _level_names(recs.drop(columns="reg_no_status"), [(0, 2)])["reg_no"].tolist()
+    assert got2 == ["different"]
 
 
 def test_date_levels():

@@ -457,6 +457,12 @@ def test_normalize_name_keys_drop_particles():
                        "CRUZ GARCIA JOSE MARIA", "M600", "C620")
 
 
+def test_name_key_ignores_which_field_a_particle_sits_in():
+    """A full name split at the wrong place ("VAN | DIJK SANNE") keeps the key of the right split."""
+    assert normalize_name("Van", "Dijk Sanne").name_key == normalize_name("Sanne", "van Dijk").name_key \
+        == "DIJK SANNE"
+
+
 def test_normalize_name_all_particle_names_keep_their_tokens():
     """A name made only of particle words (Vietnamese Lê, Đỗ) keeps them in the key."""
     got = normalize_name("Lê", "Đỗ")

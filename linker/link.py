@@ -1,0 +1,318 @@
+"""The linkage stage: normalized person-records in, scored pairs and entities out.
+
+``link_records`` wires the linkage core together: candidate pairs from the
+blocking rules (:mod:`linker.blocking`), comparison levels
+(:mod:`linker.compare`), a Fellegi-Sunter model fitted by EM without labels
+(:mod:`linker.model`), a decision per pair from two match-probability
+thresholds, and entities as connected components of the links
+(:mod:`linker.cluster`).  Everything is a DataFrame or a fitted model; no
+global state, so the stage can run on any frame of records.
+
+Decisions (``decision`` column of the pairs):
+
+``link``
+    match probability >= ``link_at``: the two records are joined into one
+    entity, unless that would join two valid registration numbers more than
+    one edit apart (a record's number counts only when it passed validation
+    and its row does not show it for two persons) with a match weight below
+    ``override_weight``; such pairs are held apart and go to review.
+``review``
+    ``review_at`` <= probability < ``link_at``: shown to a reviewer, not joined.
+``non-link``
+    below ``review_at``: not written to the pairs table.
+
+Links are leads for qualified staff to verify, never determinations.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field, replace
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from .blocking import BlockRule, block, pair_completeness, reduction_ratio
+from .cluster import constrained_entities
+from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare
+from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
+
+__all__ = ["LinkageSettings", "LinkResult", "link_records", "person_fields", "person_rules",
+           "pairs_table", "entity_ids", "entities_table", "explain_pair", "DECISIONS"]
+
+DECISIONS = ("link", "review", "non-link")
+ENTITY_FIELDS = ("reg_no", "given_name", "family_name", "birth_date", "sex")
+
+
+@dataclass(frozen=True)
+class LinkageSettings:
+    """Settings of the linkage stage (config section ``[linkage]``; docs/config.md)."""
+
+    link_at: float = 0.9           # match probability at or above which a pair is linked
+    review_at: float = 0.2         # at or above (and below link_at): the pair goes to review
+    override_weight: float = 20.0  # match weight that may join registration numbers > 1 edit apart
+    seed: int = 0                  # draws the random pairs u is estimated from
+    random_pairs: int = 200_000    # random record pairs for u and as stand-ins for the pair space
+    latent_classes: int = 3        # 2 = match / non-match; 3 adds close-but-different persons
+    name_high: float = 0.92        # Jaro-Winkler for the jw_high name level
+    name_medium: float = 0.80      # Jaro-Winkler for the jw_medium name level
+    date_days: int = 31            # largest gap for the within_days birth-date level
+    block_cap: int = 500           # largest block expanded into pairs (larger ones are reported)
+    name_window: int = 5           # sorted-window size over the order-free name key
+    guards: bool = True            # cap pairs whose given names or birth dates plainly differ
+    max_iter: int = 1000           # EM iterations at most
+
+    def __post_init__(self):
+        if not 0.0 < self.review_at <= self.link_at < 1.0:
+            raise ValueError(f"linkage: need 0 < review_at <= link_at < 1, got review_at={self.review_at}, "
+                             f"link_at={self.link_at}")
+        if self.latent_classes not in (2, 3):
+            raise ValueError(f"linkage: latent_classes must be 2 or 3, got {self.latent_classes}")
+        if not 0.0 <= self.name_medium <= self.name_high <= 1.0:
+            raise ValueError(f"linkage: need 0 <= name_medium <= name_high <= 1, got {self.name_medium}, "
+                             f"{self.name_high}")
+        for name, low in (("random_pairs", 1000), ("block_cap", 2), ("name_window", 2), ("max_iter", 1),
+                          ("date_days", 0)):
+            if getattr(self, name) < low:
+                raise ValueError(f"linkage: {name} must be >= {low}, got {getattr(self, name)}")
+
+
+def person_fields(s: LinkageSettings) -> tuple[FieldComparison, ...]:
+    """The identity comparisons with the settings' thresholds (event dates and places are left out)."""
+    out = []
+    for f in DEFAULT_PERSON_FIELDS:
+        if f.kind == "name":
+            f = replace(f, high=s.name_high, medium=s.name_medium)
+        elif f.kind == "date":
+            f = replace(f, days=s.date_days)
+        out.append(f)
+    return tuple(out)
+
+
+def person_rules(s: LinkageSettings) -> tuple[BlockRule, ...]:
+    """Blocking rules for person-records: identifiers, phonetic family name + year, given name + date, window."""
+    id_cap = min(50, s.block_cap)
+    return (
+        BlockRule("reg_no", "exact", ("reg_no",), cap=id_cap),
+        BlockRule("reg_no_near", "near_id", ("reg_no",), cap=id_cap),
+        BlockRule("family_sx_year", "exact", ("family_soundex", "birth_year"), cap=s.block_cap),
+        BlockRule("given_dob", "exact", ("given_key", "birth_date"), cap=s.block_cap),
+        BlockRule("name_window", "sorted_window", ("name_key",), window=s.name_window),
+    )
+
+
+@dataclass
+class LinkResult:
+    """What the linkage stage produced.
+
+    ``scores`` has one row per candidate pair (positions ``left``/``right`` into
+    the records, ``rules`` bitmask, ``weight``, ``probability``, ``decision``);
+    ``levels`` its level matrix; ``labels`` the entity label per record.
+    """
+
+    scores: pd.DataFrame
+    levels: np.ndarray
+    labels: np.ndarray
+    model: FellegiSunter
+    fields: tuple[FieldComparison, ...]
+    rules: tuple[BlockRule, ...]
+    blocking: pd.DataFrame
+    capped: pd.DataFrame
+    info: dict = field(default_factory=dict)
+
+
+def _quiet(message: str) -> None:
+    pass
+
+
+def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSettings(),
+                 progress: Callable[[str], None] = _quiet) -> LinkResult:
+    """Block, compare, fit, score, decide and cluster ``records`` (positions are row order)."""
+    records = records.reset_index(drop=True)
+    fields, rules = person_fields(settings), person_rules(settings)
+    t = {}
+    t0 = time.perf_counter()
+    pairs, report, capped = block(records, rules, return_capped=True)
+    t["block_s"] = time.perf_counter() - t0
+    progress(f"blocking: {len(pairs)} candidate pairs")
+    t0 = time.perf_counter()
+    levels = compare(records, pairs, fields)
+    t["compare_s"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    model = FellegiSunter(fields, seed=settings.seed, u_sample=settings.random_pairs,
+                          classes=settings.latent_classes, max_iter=settings.max_iter,
+                          guards=DEFAULT_PERSON_GUARDS if settings.guards else ())
+    model.fit(records, pairs, levels)
+    scores = model.score(records, pairs, levels)
+    t["model_s"] = time.perf_counter() - t0
+    progress(f"model: EM {'converged' if model.converged_ else 'did not converge'} "
+             f"after {model.n_iter_} iterations")
+    p = scores["probability"].to_numpy()
+    scores["rules"] = pairs["rules"].to_numpy()
+    scores["decision"] = np.where(p >= settings.link_at, "link",
+                                  np.where(p >= settings.review_at, "review", "non-link"))
+    linked = scores["decision"].to_numpy() == "link"
+    t0 = time.perf_counter()
+    left, right = scores["left"].to_numpy(), scores["right"].to_numpy()
+    labels = constrained_entities(len(records), left[linked], right[linked], scores["weight"].to_numpy()[linked],
+                                  trusted_ids(records), overwhelming=settings.override_weight)
+    held = linked & (labels[left] != labels[right])
+    scores.loc[held, "decision"] = "review"     # held apart by the identifier constraint: a reviewer decides
+    t["cluster_s"] = time.perf_counter() - t0
+    report = report.copy()
+    report["reduction_ratio"] = [reduction_ratio(int(n), len(records)) for n in report["pairs"]]
+    info = {
+        "candidate_pairs": int(len(pairs)),
+        "pairs_linked": int((linked & ~held).sum()),
+        "links_held_apart": int(held.sum()),
+        "pairs_for_review": int((scores["decision"] == "review").sum()),
+        "entities": int(labels.max() + 1) if labels.size else 0,
+        "em_iterations": int(model.n_iter_),
+        "em_converged": bool(model.converged_),
+        "match_prior": float(model.prior_),
+        "relatives_share": float(model.relative_share_),
+        "capped_blocks": int(len(capped)),
+        "timings": {k: round(v, 3) for k, v in t.items()},
+    }
+    return LinkResult(scores, levels, labels, model, fields, rules, report, capped, info)
+
+
+def trusted_ids(records: pd.DataFrame) -> np.ndarray:
+    """Per record the registration number clustering may rely on: valid, and not shown for two persons of a row."""
+    reg = records["reg_no"].astype(object).where(records["reg_no"].notna(), "").astype(str).to_numpy(dtype=object)
+    ok = records["reg_no_status"].astype(str).to_numpy() == "valid"
+    if "reg_no_shared" in records.columns:
+        shared = records["reg_no_shared"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
+        ok &= ~shared
+    return np.where(ok, reg, "").astype(object)
+
+
+def entity_ids(labels: np.ndarray) -> np.ndarray:
+    """Entity ids ``E00001``... in the order of each entity's first record."""
+    width = max(5, len(str(int(labels.max()) + 1))) if labels.size else 5
+    return np.array([f"E{k + 1:0{width}d}" for k in range(int(labels.max()) + 1 if labels.size else 0)],
+                    dtype=object)[labels] if labels.size else np.zeros(0, dtype=object)
+
+
+def _rule_names(mask: np.ndarray, rules) -> np.ndarray:
+    out = np.full(mask.size, "", dtype=object)
+    for k, r in enumerate(rules):
+        hit = (mask >> k) & 1 == 1
+        out[hit] = np.where(out[hit] == "", r.name, out[hit] + "+" + r.name)
+    return out
+
+
+def pairs_table(records: pd.DataFrame, result: LinkResult, include_non_links: bool = False) -> pd.DataFrame:
+    """Scored pairs (links and review pairs by default) with per-field levels and weights.
+
+    Columns: ``record_a``, ``record_b``, ``decision``, ``probability``,
+    ``weight``, then ``<field>_level`` and ``<field>_weight`` per field,
+    ``prior_weight``, ``guard_weight`` (what a guard took off, <= 0) and
+    ``rules`` (the blocking rules that proposed the pair).  The field weights,
+    the prior weight and the guard weight sum to ``weight``.  Sorted by
+    probability (highest first), then by record ids.
+    """
+    s = result.scores
+    keep = np.ones(len(s), dtype=bool) if include_non_links else (s["decision"].to_numpy() != "non-link")
+    left, right = s["left"].to_numpy()[keep], s["right"].to_numpy()[keep]
+    levels = result.levels[keep]
+    model = result.model
+    rec = records.reset_index(drop=True)
+    fw = model._field_weights(rec, left, right, levels)
+    prior = model._prior_weight()
+    adj, _ = model._guard_adjustment(levels, fw.sum(axis=1) + prior)
+    ids = rec["record_id"].to_numpy(dtype=object)
+    a, b = ids[left], ids[right]
+    swap = a > b
+    out = pd.DataFrame({"record_a": np.where(swap, b, a), "record_b": np.where(swap, a, b),
+                        "decision": s["decision"].to_numpy()[keep],
+                        "probability": s["probability"].to_numpy()[keep].round(6),
+                        "weight": s["weight"].to_numpy()[keep].round(4)})
+    for j, f in enumerate(result.fields):
+        out[f"{f.name}_level"] = np.asarray(f.levels, dtype=object)[levels[:, j].astype(np.int64)]
+        out[f"{f.name}_weight"] = fw[:, j].round(4)
+    out["prior_weight"] = round(prior, 4)
+    out["guard_weight"] = adj.round(4)
+    out["rules"] = _rule_names(s["rules"].to_numpy()[keep].astype(np.int64), result.rules)
+    out = out.sort_values(["probability", "record_a", "record_b"], ascending=[False, True, True],
+                          kind="mergesort")
+    return out.reset_index(drop=True)
+
+
+def _best_values(frame: pd.DataFrame, column: str) -> pd.DataFrame:
+    """Per entity: the most frequent non-empty value (ties: smallest), its count and the distinct values seen."""
+    v = frame[["entity_id", column]].astype({column: str})
+    v = v[v[column].str.strip() != ""]
+    if v.empty:
+        return pd.DataFrame(columns=["entity_id", column, f"{column}_count", f"{column}_seen"])
+    counts = v.groupby(["entity_id", column], sort=True).size().rename("n").reset_index()
+    best = counts.sort_values(["entity_id", "n", column], ascending=[True, False, True],
+                              kind="mergesort").drop_duplicates("entity_id")
+    seen = counts.groupby("entity_id")[column].agg(lambda x: "|".join(sorted(x)))
+    out = best.rename(columns={"n": f"{column}_count"})
+    out[f"{column}_seen"] = out["entity_id"].map(seen)
+    return out
+
+
+def entities_table(records: pd.DataFrame) -> pd.DataFrame:
+    """One line per entity: its best values with how many records give them, and its sources.
+
+    ``records`` must carry ``entity_id``.  For each of reg_no, given_name,
+    family_name, birth_date and sex: the value most records give
+    (``<field>``), how many give it (``<field>_count``) and every distinct
+    value seen (``<field>_seen``, ``|`` separated).  Then ``records``,
+    ``files`` (distinct source files), ``slots`` and the first record's
+    provenance.
+    """
+    rec = records.reset_index(drop=True)
+    g = rec.groupby("entity_id", sort=True)
+    out = pd.DataFrame({"entity_id": sorted(rec["entity_id"].unique())})
+    out["records"] = out["entity_id"].map(g.size())
+    out["files"] = out["entity_id"].map(g["source_file"].nunique())
+    out["slots"] = out["entity_id"].map(g["slot"].agg(lambda x: "|".join(sorted(set(x)))))
+    for col in ENTITY_FIELDS:
+        best = _best_values(rec, col)
+        out = out.merge(best, on="entity_id", how="left")
+        out[col] = out[col].fillna("")
+        out[f"{col}_count"] = out[f"{col}_count"].fillna(0).astype(int)
+        out[f"{col}_seen"] = out[f"{col}_seen"].fillna("")
+    first = rec.drop_duplicates("entity_id")[["entity_id", "record_id", "source_file", "sheet", "row", "slot"]]
+    first = first.rename(columns={c: f"first_{c}" for c in first.columns if c != "entity_id"})
+    return out.merge(first, on="entity_id", how="left")
+
+
+def explain_pair(records: pd.DataFrame, model: FellegiSunter, record_a: str, record_b: str) -> pd.DataFrame:
+    """Per-field account of two records (by record id): values, level, m, u and weight.
+
+    The ``weight`` column (prior row, field rows and a guard row when one
+    fired) sums to the pair's match weight.  Raises KeyError naming an
+    unknown record id.
+    """
+    rec = records.reset_index(drop=True)
+    ids = rec["record_id"].astype(str)
+    pos = {}
+    for rid in (record_a, record_b):
+        hit = np.flatnonzero(ids.to_numpy() == str(rid))
+        if hit.size == 0:
+            raise KeyError(f"no record with id {rid!r}")
+        pos[rid] = int(hit[0])
+    table = model.explain(rec, pos[record_a], pos[record_b])
+    by_name = {f.name: f for f in model.fields}
+    va, vb = [], []
+    for name in table["field"]:
+        f = by_name.get(name)
+        va.append("" if f is None else str(rec.at[pos[record_a], f.columns[0]]))
+        vb.append("" if f is None else str(rec.at[pos[record_b], f.columns[0]]))
+    table.insert(1, "value_a", va)
+    table.insert(2, "value_b", vb)
+    return table
+
+
+def blocking_report(result: LinkResult, truth_labels=None) -> pd.DataFrame:
+    """Pairs per blocking rule and reduction ratio; with truth, pair completeness per rule too."""
+    rep = result.blocking
+    if truth_labels is None:
+        return rep
+    pc = pair_completeness(result.scores[["left", "right", "rules"]], truth_labels, result.rules)
+    return rep.merge(pc[["rule", "true_pairs", "pair_completeness"]], on="rule", how="left")
