@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ConfigError
+from .link import LinkageSettings
 from .normalize import DEFAULT_SEX_CODES, IdScheme, fold_header, fold_text
 from .schema import CANONICAL_FIELDS, EVENT_FIELDS, PERSON_FIELDS
 
@@ -99,6 +100,7 @@ class LinkConfig:
     cutoff_date: dt.date | None
     min_parent_age_gap: float
     min_header_matches: int
+    linkage: LinkageSettings = field(default_factory=LinkageSettings)
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
 
     def settings_for(self, source_file: str, sheet: str) -> SheetSettings:
@@ -157,7 +159,9 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
     "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM},
-    "linkage": None,    # checked by the linkage stage's own table
+    "linkage": {"link_at": _NUM, "review_at": _NUM, "override_weight": _NUM, "seed": _INT,
+                "random_pairs": _INT, "latent_classes": _INT, "name_high": _NUM, "name_medium": _NUM,
+                "date_days": _INT, "block_cap": _INT, "name_window": _INT, "guards": _BOOL, "max_iter": _INT},
 }
 _SHEET_KEYS = {"file": _STR, "sheet": _STR, "slot": _STR, "slot_column": _STR,
                "slot_values": _TABLE, "date_order": _STR, "sex_codes": _TABLE,
@@ -305,8 +309,13 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
     cutoff = v.date(rules["cutoff_date"], "[rules] cutoff_date") if "cutoff_date" in rules else None
     gap = float(rules.get("min_parent_age_gap", 12))
 
+    try:
+        linkage = LinkageSettings(**doc.get("linkage", {}))
+    except ValueError as exc:
+        v.fail("[linkage]", str(exc).removeprefix("linkage: "))
+
     return LinkConfig(
-        source=str(source), config_hash=config_hash, folder=folder, patterns=patterns,
+        linkage=linkage, source=str(source), config_hash=config_hash, folder=folder, patterns=patterns,
         exclude=exclude, skip_unreadable=delivery.get("skip_unreadable", False), scheme=scheme,
         id_label=ident.get("label", "registration number"), date_order=order,
         fallback_order=fallback, min_year=dates.get("min_year", 1900), as_of=as_of,

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -30,6 +31,9 @@ HEADER_SCAN_ROWS = 30
 # Person fields that make a slot "present" on a row (sex alone does not).
 IDENTITY_FIELDS = ("reg_no", "given_name", "family_name", "full_name", "birth_date", "age")
 ALL_SLOTS = "*"   # owner of generic event fields: every person on the row
+# A cell that reads as a total label: "Total", "TOTALS", "Total: 57", "Total children",
+# "Grand total", "Sub-total", "Totaux" (not "Totaro" or "Totten").
+_TOTAL_LABEL = re.compile(r"^\W*(?:grand|sub)?\W*tot(?:al|aux|ale|aal)s?(?![a-z])", re.IGNORECASE)
 
 
 @dataclass
@@ -174,6 +178,11 @@ def _col_line(c: int, header: str, mapped: str, note: str) -> dict:
     return {"column": column_letter(c), "header": header, "mapped_to": mapped, "note": note}
 
 
+def is_total_label(text: str) -> bool:
+    """True when a cell reads as the label of a total row ("Total: 57", "Grand total", ...)."""
+    return bool(text) and _TOTAL_LABEL.match(text) is not None
+
+
 def _is_total_or_note(texts: list[str]) -> str:
     filled = [t for t in texts if t]
     first = fold_text(filled[0]) if filled else ""
@@ -243,6 +252,11 @@ def ingest_sheet(cfg: LinkConfig, source_file: str, sheet: SheetData) -> SheetRe
         slots_here = sorted(set(slots_here) | set(settings.slot_values.values()))
     extra_cols = [c for c in range(width) if c not in mapping and c != slot_col and header[c]]
     unnamed_cols = [c for c in range(width) if not header[c]]
+    # cells that would make a person present (or pick the slot): a total label there
+    # marks a total row even when another cell (station, date) comes first
+    label_cols = [c for c, (_, fld) in mapping.items() if fld in IDENTITY_FIELDS]
+    if slot_col is not None:
+        label_cols.append(slot_col)
 
     out_rows = []
     claims = []
@@ -258,7 +272,8 @@ def ingest_sheet(cfg: LinkConfig, source_file: str, sheet: SheetData) -> SheetRe
             led(rownum, OUTCOME_SKIPPED, "repeated header row")
             continue
         first = next(x for x in t if x)
-        if fold_text(first).startswith(("TOTAL", "SUBTOTAL", "GRAND TOTAL")):
+        if fold_text(first).startswith(("TOTAL", "SUBTOTAL", "GRAND TOTAL")) or \
+                any(is_total_label(t[c]) for c in label_cols):
             led(rownum, OUTCOME_SKIPPED, "total row")
             continue
         row_slot = None

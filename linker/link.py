@@ -135,6 +135,8 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
     t0 = time.perf_counter()
     pairs, report, capped = block(records, rules, return_capped=True)
     t["block_s"] = time.perf_counter() - t0
+    if len(records) < 3 or len(pairs) == 0:
+        return _unlinked(records, pairs, fields, rules, report, capped, settings)
     progress(f"blocking: {len(pairs)} candidate pairs")
     t0 = time.perf_counter()
     levels = compare(records, pairs, fields)
@@ -186,6 +188,21 @@ def trusted_ids(records: pd.DataFrame) -> np.ndarray:
         shared = records["reg_no_shared"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
         ok &= ~shared
     return np.where(ok, reg, "").astype(object)
+
+
+def _unlinked(records, pairs, fields, rules, report, capped, settings) -> LinkResult:
+    """Too few records or no candidate pairs to fit a model: every record is its own entity."""
+    n = len(records)
+    model = FellegiSunter(fields, seed=settings.seed, u_sample=settings.random_pairs,
+                          classes=settings.latent_classes)
+    scores = pd.DataFrame({"left": pairs["left"].to_numpy(dtype=np.int64),
+                           "right": pairs["right"].to_numpy(dtype=np.int64),
+                           "weight": np.zeros(len(pairs)), "probability": np.zeros(len(pairs)),
+                           "rules": pairs["rules"].to_numpy(), "decision": "non-link"})
+    info = {"candidate_pairs": int(len(pairs)), "pairs_linked": 0, "links_held_apart": 0, "pairs_for_review": 0,
+            "entities": n, "model": "not fitted: fewer than 3 records or no candidate pairs"}
+    return LinkResult(scores, np.zeros((len(pairs), len(fields)), dtype=np.int8), np.arange(n, dtype=np.int64),
+                      model, fields, rules, report, capped, info)
 
 
 def entity_ids(labels: np.ndarray) -> np.ndarray:
@@ -266,6 +283,8 @@ def entities_table(records: pd.DataFrame) -> pd.DataFrame:
     provenance.
     """
     rec = records.reset_index(drop=True)
+    if rec.empty:
+        return pd.DataFrame(columns=["entity_id", "records", "files", "slots"])
     g = rec.groupby("entity_id", sort=True)
     out = pd.DataFrame({"entity_id": sorted(rec["entity_id"].unique())})
     out["records"] = out["entity_id"].map(g.size())

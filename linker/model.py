@@ -474,7 +474,7 @@ class FellegiSunter:
             data = np.concatenate([levels, others]) if others.size else levels
             wts = np.concatenate([np.ones(levels.shape[0]), np.full(others.shape[0], w_other)])
             patterns, counts = pattern_counts(data, wts)
-            p0 = self.prior if self.prior is not None else 1.0 / max(n - 1, 1)
+            p0 = self.prior if self.prior is not None else min(1.0 / max(n - 1, 1), 0.1)
         else:
             patterns, counts = pattern_counts(levels)
             p0 = self.prior if self.prior is not None else 0.1

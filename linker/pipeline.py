@@ -20,6 +20,7 @@ from .config import LinkConfig
 from .errors import InputError
 from .ingest import ingest_file
 from .io import file_facts, list_delivery, read_file, write_csv, write_json
+from .link import entities_table, entity_ids, link_records, pairs_table
 from .records import normalize_records
 from .schema import FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
 
@@ -47,6 +48,7 @@ class RunResult:
     info: dict
     warnings: list[str] = field(default_factory=list)
     extra: dict = field(default_factory=dict)   # frames added by later stages (pairs, entities...)
+    model: object = None                         # the fitted FellegiSunter model
 
 
 def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
@@ -102,6 +104,16 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     timings["normalize_s"] = round(time.perf_counter() - t1, 3)
     progress("normalized person-records")
     ledger = ledger.reset_index(drop=True)
+    records = records.reset_index(drop=True)
+    t2 = time.perf_counter()
+    linked = link_records(records, cfg.linkage, progress)
+    records.insert(1, "entity_id", entity_ids(linked.labels))
+    fitted = hasattr(linked.model, "m_")
+    pairs = pairs_table(records, linked) if fitted else pd.DataFrame()
+    entities = entities_table(records)
+    timings["link_s"] = round(time.perf_counter() - t2, 3)
+    progress(f"linked: {linked.info['entities']} entities, {linked.info['pairs_for_review']} pairs for review")
+    warnings = list(warnings) + [f"model: {w}" for w in getattr(linked.model, "warnings_", [])]
     info = {
         "linker_version": __version__,
         "config": Path(cfg.source).name,
@@ -118,7 +130,10 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
         },
         "timings": timings,
     }
-    return RunResult(records, ledger, claims, files, columns, info, warnings)
+    info["linkage"] = linked.info
+    return RunResult(records, ledger, claims, files, columns, info, warnings,
+                     extra={"pairs.csv": pairs, "entities.csv": entities, "blocking.csv": linked.blocking},
+                     model=linked.model if fitted else None)
 
 
 def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
@@ -135,6 +150,11 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     info = dict(result.info)
     info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     info["warnings"] = result.warnings
+    if result.model is not None:
+        tmp = out / "model.json.tmp"
+        result.model.to_json(tmp)
+        tmp.replace(out / "model.json")
+        written.append(out / "model.json")
     write_json(info, out / "run.json")
     written.append(out / "run.json")
     return written

@@ -149,10 +149,48 @@ def test_outputs_written(project):
     names = {p.name for p in written}
     assert {"records.csv", "ledger.csv", "files.csv", "run.json", "claims.csv"} <= names
     recs = pd.read_csv(root / "out" / "records.csv", dtype=str, keep_default_na=False)
-    assert list(recs.columns[:6]) == ["record_id", "row_key", "source_file", "sheet", "row", "slot"]
+    assert list(recs.columns[:6]) == ["record_id", "entity_id", "row_key", "source_file", "sheet", "row"]
     assert recs["record_id"].is_unique
 
 
 def test_column_letters():
     """Column indexes read as spreadsheet letters (common practice: A..Z, AA..)."""
     assert [column_letter(i) for i in (0, 25, 26, 701, 702)] == ["A", "Z", "AA", "ZZ", "AAA"]
+
+
+def _totals_workbook(path):
+    """A log whose total rows carry their label in the first cell or in a name column."""
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.title = "Log"
+    ws.append(["Station", "Child first name", "Child last name", "Child age", "Child Reg No",
+               "Parent name", "Officer remarks"])                                   # 1 header
+    ws.append(["Quarry Gate", "Ana", "Ferro", 7, "HR-0412-3385", "FERRO, Lidia",
+               "total of 2 siblings"])                                              # 2 persons
+    ws.append(["Quarry Gate", "Total", "", 57, "", "", ""])                         # 3
+    ws.append(["Quarry Gate", "", "TOTAL", "", 57, "", ""])                         # 4
+    ws.append(["Linden Ford", "Total children", "", 12, "", "", ""])               # 5
+    ws.append(["Linden Ford", "", "", "", 69, "Grand total", ""])                   # 6
+    ws.append(["Total: 57", "", "", "", "", "", ""])                                # 7
+    ws.append(["", "Totals", "", 57, "", "", ""])                                   # 8
+    ws.append(["Saltreach", "Sub-total", "", 5, "", "", ""])                        # 9
+    ws.append(["Saltreach", "", "Totaux", 3, "", "", ""])                           # 10
+    ws.append(["Saltreach", "", "", "", "", "GRAND TOTAL: 69", ""])                 # 11
+    ws.append(["Saltreach", "Pia", "Totaro", 4, "", "", ""])                        # 12 a person
+    wb.save(path)
+
+
+def test_total_rows_with_counts_make_no_records(project):
+    """Total rows (label in the first cell or a name column, a count elsewhere) are ledgered, not persons."""
+    root, write = project
+    _totals_workbook(root / "delivery" / "log.xlsx")
+    res = run_pipeline(load_config(write()))
+    assert sheet_rows_covered(res.ledger, "log.xlsx", "Log", 12)
+    led = res.ledger.set_index("row")
+    totals = [3, 4, 5, 6, 7, 8, 9, 10, 11]
+    assert list(led.loc[totals, "reason"]) == ["total row"] * len(totals)
+    assert (led.loc[totals, "outcome"] == "skipped").all()
+    assert (led.loc[totals, "records"] == 0).all()
+    assert sorted(set(res.records["row"])) == [2, 12]           # remarks saying "total" do not matter
+    assert led.loc[2, "records"] == 2 and led.loc[12, "records"] == 1
+    assert res.records.set_index("row").loc[12, "family_name"] == "TOTARO"

@@ -15,8 +15,10 @@ from collections import Counter
 from pathlib import Path
 
 import openpyxl
+import pandas as pd
 import pytest
 
+from linker import load_config, run_pipeline
 from sample import generate
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -276,3 +278,113 @@ def test_alternate_vocabulary_shares_no_header_with_demo_config(tmp_path):
             used |= {fold(v) for v in rows[scores.index(max(scores))] if not blank(v)}
     assert len(used & alt) >= 40
     assert not (used & demo), sorted(used & demo)
+
+
+def delivery_rows(delivery: Path) -> dict[tuple[str, str], list[list]]:
+    """(source_file, sheet) -> rows, for every sheet of every xlsx/csv file, read without linker."""
+    out = {}
+    for path in sorted(delivery.rglob("*")):
+        rel = path.relative_to(delivery).as_posix()
+        if path.suffix == ".csv":
+            out[rel, path.stem] = read_rows(path, "")
+        elif path.suffix == ".xlsx":
+            wb = openpyxl.load_workbook(path, read_only=True)
+            names = wb.sheetnames
+            wb.close()
+            for name in names:
+                out[rel, name] = read_rows(path, name)
+    return out
+
+
+def accounting_problems(sheets: dict, ledger: pd.DataFrame, records: pd.DataFrame) -> list[str]:
+    """Where a run fails to account for the input rows, counted here with openpyxl / csv.
+
+    Every spreadsheet row (1 .. last row, blank ones included) has exactly one
+    ledger line, a sheet without any value has one "empty sheet" line, every
+    "record" line has exactly the records it announces, and records come only
+    from "record" lines.
+    """
+    problems = []
+    row_no = pd.to_numeric(ledger["row"], errors="coerce")
+    numbered, sheet_level = ledger[row_no.notna()].assign(row=row_no.dropna().astype(int)), ledger[row_no.isna()]
+    per_row = records.groupby(["source_file", "sheet", "row"])["slot"].agg(sorted).to_dict()
+    for (source_file, sheet), rows in sheets.items():
+        where = f"{source_file}/{sheet}"
+        lines = numbered[(numbered["source_file"] == source_file) & (numbered["sheet"] == sheet)]
+        marks = sheet_level[(sheet_level["source_file"] == source_file) & (sheet_level["sheet"] == sheet)]
+        has_data = any(not blank(v) for r in rows for v in r)
+        if not has_data:
+            if list(marks["outcome"]) != ["empty sheet"]:
+                problems.append(f"{where}: no data but ledger says {list(marks['outcome'])}")
+            if not set(lines["reason"]) <= {"blank row"}:
+                problems.append(f"{where}: empty sheet with non-blank ledger rows")
+            continue
+        if len(marks):
+            problems.append(f"{where}: sheet-level ledger line on a sheet with data")
+        counted = Counter(lines["row"])
+        missing = [r for r in range(1, len(rows) + 1) if counted[r] == 0]
+        twice = sorted(r for r, n in counted.items() if n > 1)
+        beyond = sorted(r for r in counted if not 1 <= r <= len(rows))
+        for label, bad in (("rows without a ledger line", missing), ("rows ledgered twice", twice),
+                           ("ledger rows the file does not have", beyond)):
+            if bad:
+                problems.append(f"{where}: {label}: {bad[:5]}")
+        for line in lines.itertuples(index=False):
+            if not 1 <= line.row <= len(rows):
+                continue
+            is_blank = all(blank(v) for v in rows[line.row - 1])
+            if is_blank != (line.reason == "blank row"):
+                problems.append(f"{where} row {line.row}: blank={is_blank} but ledger reason {line.reason!r}")
+            slots = per_row.get((source_file, sheet, line.row), [])
+            if line.outcome == "record":
+                named = line.reason.removeprefix("persons: ").split(", ")
+                if slots != sorted(named) or len(slots) != line.records or not slots:
+                    problems.append(f"{where} row {line.row}: ledger names {named} ({line.records}), "
+                                    f"records have {slots}")
+            elif slots or line.records:
+                problems.append(f"{where} row {line.row}: {line.outcome!r} row with records {slots}")
+    stray = sorted({(f, s) for f, s, _ in per_row} - set(sheets))
+    if stray:
+        problems.append(f"records from sheets the delivery does not have: {stray[:3]}")
+    if len(records) != ledger["records"].sum() or not records["record_id"].is_unique:
+        problems.append(f"{len(records)} records but the ledger announces {ledger['records'].sum()}")
+    return problems
+
+
+def test_every_row_of_the_sample_delivery_is_accounted_for():
+    """All rows of every file and sheet (counted with openpyxl / csv) are in the ledger once, records match."""
+    res = run_pipeline(load_config(DEMO_CONFIG))
+    sheets = delivery_rows(SAMPLE / "delivery")
+    assert len({f for f, _ in sheets}) == 7 and len(sheets) >= 20
+    assert accounting_problems(sheets, res.ledger, res.records) == []
+    assert res.info["counts"]["input_rows"] == sum(len(rows) for rows in sheets.values())
+    # every truth person-record comes from a "record" row and is among its records
+    truth = pd.read_csv(SAMPLE / "truth" / "records.csv", dtype={"row": int}, keep_default_na=False)
+    key = ["source_file", "sheet", "row", "slot"]
+    assert set(map(tuple, truth[key].values)) <= set(map(tuple, res.records[key].values))
+    # the check is live: a dropped, doubled or record-less ledger line is reported
+    led = res.ledger
+    first_record = led.index[led["outcome"] == "record"][0]
+    broken = {
+        "dropped row": (led.drop(index=first_record), res.records),
+        "row twice": (pd.concat([led, led.iloc[[5]]]), res.records),
+        "lost record": (led, res.records.iloc[1:]),
+        "records from a skipped row": (led.assign(outcome=led["outcome"].mask(
+            led.index == first_record, "skipped")), res.records),
+    }
+    for name, (ledger, records) in broken.items():
+        assert accounting_problems(sheets, ledger, records), name
+
+
+def test_alternate_vocabulary_delivery_is_recovered_with_its_own_config(tmp_path):
+    """The alternate delivery, read only with its generated alternate.toml: >= 99% of truth, <= 1% spurious."""
+    generate.write_delivery(tmp_path, vocabulary="alternate")
+    res = run_pipeline(load_config(tmp_path / "alternate.toml"))
+    truth = pd.read_csv(tmp_path / "truth" / "records.csv", dtype={"row": int}, keep_default_na=False)
+    key = ["source_file", "sheet", "row", "slot"]
+    expected = set(map(tuple, truth[key].values))
+    got = set(map(tuple, res.records[key].values))
+    assert len(expected) == len(truth) > 3000
+    assert len(expected & got) / len(expected) >= 0.99
+    assert len(got - expected) / len(expected) <= 0.01
+    assert accounting_problems(delivery_rows(tmp_path / "delivery"), res.ledger, res.records) == []

@@ -1,0 +1,76 @@
+"""The linkage stage on the demo delivery: accuracy against its ground truth, explain, config checks."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from linker import load_config, run_pipeline
+from linker.config import parse_config
+from linker.errors import ConfigError
+from linker.evaluate import bcubed_metrics, pairwise_metrics
+from linker.link import explain_pair
+
+from conftest import ROOT
+
+PROVENANCE = ["source_file", "sheet", "row", "slot"]
+
+
+@pytest.fixture(scope="module")
+def demo():
+    res = run_pipeline(load_config(ROOT / "configs" / "sample.toml"))
+    truth = pd.read_csv(ROOT / "sample" / "truth" / "records.csv", dtype=str, keep_default_na=False)
+    joined = res.records[PROVENANCE].astype(str).merge(truth, on=PROVENANCE, how="left", validate="one_to_one")
+    assert joined["person_id"].notna().all()
+    return res, pd.factorize(joined["person_id"])[0]
+
+
+def test_demo_entities_match_truth_without_labels(demo):
+    """Unsupervised: pairwise F1 >= 0.99 and B-cubed F1 >= 0.99 against the generator's truth (invented demo data)."""
+    res, truth = demo
+    pred = pd.factorize(res.records["entity_id"])[0]
+    pw, b3 = pairwise_metrics(pred, truth), bcubed_metrics(pred, truth)
+    print(f"demo pairwise P {pw['precision']:.4f} R {pw['recall']:.4f} F1 {pw['f1']:.4f}; B-cubed F1 {b3['f1']:.4f}")
+    assert pw["f1"] >= 0.99
+    assert b3["f1"] >= 0.99
+
+
+def test_explain_sums_to_the_pair_weight_on_the_demo(demo):
+    """For scored demo pairs the per-field explain weights sum to the weight written in pairs.csv."""
+    res, _ = demo
+    pairs = res.extra["pairs.csv"]
+    picks = pairs.iloc[np.linspace(0, len(pairs) - 1, 25).astype(int)]
+    for _, p in picks.iterrows():
+        table = explain_pair(res.records, res.model, p["record_a"], p["record_b"])
+        assert table["weight"].sum() == pytest.approx(p["weight"], abs=1e-3)
+        field_cols = [c for c in pairs.columns if c.endswith("_weight")]
+        assert sum(p[c] for c in field_cols) == pytest.approx(p["weight"], abs=1e-3)
+
+
+def test_pairs_hold_only_links_and_review_pairs_above_the_lower_threshold(demo):
+    res, _ = demo
+    pairs = res.extra["pairs.csv"]
+    cfg = load_config(ROOT / "configs" / "sample.toml").linkage
+    assert set(pairs["decision"]) <= {"link", "review"}
+    assert (pairs["probability"] >= cfg.review_at - 1e-6).all()
+    linked = pairs[pairs["decision"] == "link"]
+    ent = res.records.set_index("record_id")["entity_id"]
+    assert (ent[linked["record_a"]].to_numpy() == ent[linked["record_b"]].to_numpy()).all()
+
+
+def test_entities_table_counts_every_record_once(demo):
+    res, _ = demo
+    ent = res.extra["entities.csv"]
+    assert ent["records"].sum() == len(res.records)
+    assert ent["entity_id"].is_unique and set(ent["entity_id"]) == set(res.records["entity_id"])
+
+
+@pytest.mark.parametrize("linkage, key", [({"link_at": 0.1, "review_at": 0.5}, "[linkage]"),
+                                          ({"latent_classes": 4}, "[linkage]"),
+                                          ({"treshold": 0.5}, "[linkage] treshold")])
+def test_bad_linkage_settings_name_the_key(linkage, key):
+    doc = {"delivery": {"folder": "d"}, "slots": {"child": {"columns": {"reg_no": ["Reg No"]}}}, "linkage": linkage}
+    with pytest.raises(ConfigError) as err:
+        parse_config(doc, source="x.toml")
+    assert key in str(err.value)
