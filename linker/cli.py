@@ -13,8 +13,10 @@ from pathlib import Path
 
 from . import __version__
 from .config import load_config
-from .errors import LinkerError
-from .pipeline import _quiet, run_pipeline, stderr_progress, write_outputs
+from .errors import InputError, LinkerError
+from .evaluate import evaluate_entities, read_truth
+from .link import explain_pair
+from .pipeline import _quiet, read_model, read_records, run_pipeline, stderr_progress, write_outputs
 
 DESCRIPTION = """\
 linker links person-records across agency spreadsheet productions: it reads every
@@ -39,6 +41,26 @@ def build_parser() -> argparse.ArgumentParser:
                      help="list corrupt or protected files in the ledger and go on, "
                      "instead of stopping")
     run.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    run.add_argument("--truth", metavar="FILE",
+                     help="a record -> person_id table (by record_id, or by source_file, sheet, row, "
+                     "slot); adds pair completeness per rule to blocking.csv and writes evaluation.csv")
+
+    explain = sub.add_parser("explain", help="show why two records got their match weight",
+                             description="Print, for two records of an earlier run, each field's "
+                             "values, comparison level, m, u and weight.  The weights, with the "
+                             "prior and any guard, sum to the pair's match weight.")
+    explain.add_argument("record_a", metavar="RECORD_A", help="record_id of the first record")
+    explain.add_argument("record_b", metavar="RECORD_B", help="record_id of the second record")
+    explain.add_argument("--out", default="out", metavar="DIR",
+                         help="folder of the run (records.csv and model.json; default: out)")
+
+    evaluate = sub.add_parser("evaluate", help="score a run's entities against known truth",
+                              description="Pairwise and B-cubed precision, recall and F1 of the "
+                              "entity_id in DIR/records.csv against a truth table.")
+    evaluate.add_argument("--truth", required=True, metavar="FILE",
+                          help="CSV with person_id and either record_id or source_file, sheet, row, slot")
+    evaluate.add_argument("--out", default="out", metavar="DIR",
+                          help="folder of the run (default: out)")
 
     check = sub.add_parser("check-config", help="validate a config without running",
                            description="Load and validate a config; report the first problem "
@@ -78,16 +100,58 @@ def _dispatch(args) -> int:
     if args.command == "run":
         cfg = load_config(args.config)
         progress = _quiet if args.quiet else stderr_progress
+        truth = read_truth(args.truth) if args.truth else None
         result = run_pipeline(cfg, progress=progress,
-                              skip_unreadable=True if args.skip_unreadable else None)
+                              skip_unreadable=True if args.skip_unreadable else None, truth=truth)
         written = write_outputs(result, args.out)
         for w in result.warnings:
             print(f"linker: warning: {w}", file=sys.stderr)
         c = result.info["counts"]
         print(f"{c['files']} files, {c['input_rows']} rows, {c['records']} person-records, "
               f"{c['relation_claims']} relation claims -> {args.out} ({len(written)} files)")
+        if "evaluation.csv" in result.extra:
+            _print_scores(result.extra["evaluation.csv"])
+        return 0
+    if args.command == "explain":
+        return _explain(args)
+    if args.command == "evaluate":
+        records = read_records(args.out)
+        truth = read_truth(args.truth)
+        try:
+            scores = evaluate_entities(records, truth)
+        except ValueError as err:
+            raise InputError(args.truth, str(err)) from None
+        _print_scores(scores)
         return 0
     raise AssertionError(args.command)
+
+
+def _explain(args) -> int:
+    records = read_records(args.out)
+    model = read_model(args.out)
+    try:
+        table = explain_pair(records, model, args.record_a, args.record_b)
+    except KeyError as err:
+        raise InputError(Path(args.out) / "records.csv", err.args[0]) from None
+    total = float(table["weight"].sum())
+    probability = 1.0 / (1.0 + 2.0 ** -total)
+    shown = table.copy()
+    for col in ("m", "u", "weight"):
+        shown[col] = shown[col].map(lambda v: "" if v != v else f"{v:.4f}" if col != "weight" else f"{v:+.2f}")
+    cols = [c for c in ("field", "value_a", "value_b", "level", "m", "u", "weight") if c in shown.columns]
+    print(f"{args.record_a} vs {args.record_b}")
+    print(shown[cols].to_string(index=False))
+    print(f"match weight {total:+.2f} (log2), match probability {probability:.4f}")
+    print("A link is a lead for qualified staff to verify, never a determination.")
+    return 0
+
+
+def _print_scores(scores) -> None:
+    for _, r in scores.iterrows():
+        print(f"{r['measure']:>8}: precision {r['precision']:.4f}  recall {r['recall']:.4f}  f1 {r['f1']:.4f}")
+    first = scores.iloc[0]
+    print(f"{first['records_scored']} records scored, {first['records_without_truth']} without truth, "
+          f"{first['truth_rows_unmatched']} truth rows matched no record")
 
 
 if __name__ == "__main__":

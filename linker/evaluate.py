@@ -14,10 +14,15 @@ All counting goes through a contingency table of (predicted, true) labels
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 
-__all__ = ["cluster_metrics", "pairwise_metrics", "bcubed_metrics", "pair_metrics"]
+from .errors import InputError
+
+__all__ = ["cluster_metrics", "pairwise_metrics", "bcubed_metrics", "pair_metrics", "truth_labels",
+           "evaluate_entities", "read_truth"]
 
 
 def _unique(x: np.ndarray) -> np.ndarray:
@@ -101,3 +106,81 @@ def pair_metrics(left, right, truth_labels) -> dict:
     out = _prf(tp, key.size, n_true)
     out.update({"tp": tp, "predicted_pairs": int(key.size), "true_pairs": n_true})
     return out
+
+
+# --- truth files -----------------------------------------------------------------------------------
+
+TRUTH_PERSON = "person_id"
+_PROVENANCE = ("source_file", "sheet", "row", "slot")
+
+
+def truth_labels(records: pd.DataFrame, truth: pd.DataFrame) -> tuple[pd.Series, int]:
+    """The true person of each record, aligned to ``records`` (missing where the truth is silent).
+
+    ``truth`` holds ``person_id`` and either ``record_id`` or the four provenance
+    columns (source_file, sheet, row, slot).  Returns the labels and the number
+    of truth rows that match no record.  Raises ValueError naming what is wrong.
+    """
+    _check_truth(truth)
+    keys = ["record_id"] if "record_id" in truth.columns else list(_PROVENANCE)
+    missing = [c for c in keys if c not in records.columns]
+    if missing:
+        raise ValueError(f"the records have no {', '.join(missing)} column")
+    t = truth[keys + [TRUTH_PERSON]].astype(str)
+    left = records[keys].astype(str).reset_index(drop=True)
+    joined = left.merge(t, on=keys, how="left", validate="many_to_one")
+    labels = joined[TRUTH_PERSON]
+    labels = labels.where(labels.notna() & (labels != ""))
+    labels.index = records.index
+    matched = t.merge(left.drop_duplicates(), on=keys, how="inner")
+    return labels, int(len(t) - len(matched))
+
+
+def evaluate_entities(records: pd.DataFrame, truth: pd.DataFrame, label_column: str = "entity_id") -> pd.DataFrame:
+    """Pairwise and B-cubed precision, recall and F1 of ``label_column`` against a truth table.
+
+    Only records the truth covers are scored; the frame also reports how many
+    records had no truth and how many truth rows matched no record.
+    """
+    if label_column not in records.columns:
+        raise ValueError(f"the records have no {label_column!r} column")
+    labels, unmatched = truth_labels(records, truth)
+    covered = labels.notna().to_numpy()
+    pred = records[label_column].astype(str).to_numpy()[covered]
+    true = labels.to_numpy()[covered]
+    pw, b3 = pairwise_metrics(pred, true), bcubed_metrics(pred, true)
+    rows = []
+    for name, m in (("pairwise", pw), ("bcubed", b3)):
+        rows.append({"measure": name, "precision": m["precision"], "recall": m["recall"], "f1": m["f1"],
+                     "records_scored": int(covered.sum()),
+                     "records_without_truth": int((~covered).sum()),
+                     "truth_rows_unmatched": unmatched})
+    return pd.DataFrame(rows)
+
+
+def read_truth(path) -> pd.DataFrame:
+    """Read a truth CSV (all columns as text) and check its shape; errors name the file."""
+    path = Path(path)
+    try:
+        truth = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise InputError(path, "no such truth file") from None
+    except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as err:
+        raise InputError(path, f"cannot read the truth file ({type(err).__name__})") from None
+    try:
+        _check_truth(truth)
+    except ValueError as err:
+        raise InputError(path, str(err)) from None
+    return truth
+
+
+def _check_truth(truth: pd.DataFrame) -> None:
+    if TRUTH_PERSON not in truth.columns:
+        raise ValueError(f"the truth file has no {TRUTH_PERSON!r} column")
+    keys = ["record_id"] if "record_id" in truth.columns else list(_PROVENANCE)
+    if not all(c in truth.columns for c in keys):
+        raise ValueError("the truth file needs a 'record_id' column or the columns " + ", ".join(_PROVENANCE))
+    dup = truth.duplicated(keys, keep="first")
+    if dup.any():
+        line = int(np.flatnonzero(dup.to_numpy())[0]) + 2
+        raise ValueError(f"line {line} names a record that another line names too")

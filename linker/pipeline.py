@@ -20,7 +20,9 @@ from .config import LinkConfig
 from .errors import InputError
 from .ingest import ingest_file
 from .io import file_facts, list_delivery, read_file, write_csv, write_json
-from .link import entities_table, entity_ids, link_records, pairs_table
+from .evaluate import evaluate_entities, truth_labels
+from .model import FellegiSunter
+from .link import blocking_report, entities_table, entity_ids, link_records, pairs_table
 from .records import normalize_records
 from .schema import FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
 
@@ -92,8 +94,13 @@ def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadabl
 
 
 def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
-                 skip_unreadable: bool | None = None) -> RunResult:
-    """Run every stage on the delivery the config names and return the frames."""
+                 skip_unreadable: bool | None = None, truth: pd.DataFrame | None = None) -> RunResult:
+    """Run every stage on the delivery the config names and return the frames.
+
+    With ``truth`` (person_id by record_id or by provenance, see
+    :func:`linker.evaluate.truth_labels`) the blocking report gains pair
+    completeness per rule and ``evaluation.csv`` holds pairwise and B-cubed scores.
+    """
     timings = {}
     t0 = time.perf_counter()
     raw, ledger, claims, files, columns, warnings = ingest_delivery(cfg, progress, skip_unreadable)
@@ -114,6 +121,13 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     timings["link_s"] = round(time.perf_counter() - t2, 3)
     progress(f"linked: {linked.info['entities']} entities, {linked.info['pairs_for_review']} pairs for review")
     warnings = list(warnings) + [f"model: {w}" for w in getattr(linked.model, "warnings_", [])]
+    extra = {"pairs.csv": pairs, "entities.csv": entities, "blocking.csv": linked.blocking}
+    if truth is not None:
+        labels, _ = truth_labels(records, truth)
+        # records the truth does not cover count as singletons for pair completeness
+        own = pd.Series("\x00" + records["record_id"].astype(str), index=records.index)
+        extra["blocking.csv"] = blocking_report(linked, labels.fillna(own).to_numpy())
+        extra["evaluation.csv"] = evaluate_entities(records, truth)
     info = {
         "linker_version": __version__,
         "config": Path(cfg.source).name,
@@ -132,7 +146,7 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     }
     info["linkage"] = linked.info
     return RunResult(records, ledger, claims, files, columns, info, warnings,
-                     extra={"pairs.csv": pairs, "entities.csv": entities, "blocking.csv": linked.blocking},
+                     extra=extra,
                      model=linked.model if fitted else None)
 
 
@@ -158,3 +172,26 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     write_json(info, out / "run.json")
     written.append(out / "run.json")
     return written
+
+
+def read_records(out_dir: str | Path) -> pd.DataFrame:
+    """The records.csv of an earlier run, every column as text; errors name the file."""
+    path = Path(out_dir) / "records.csv"
+    if not path.is_file():
+        raise InputError(path, "no records.csv here; run `linker run CONFIG --out DIR` first")
+    try:
+        return pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8")
+    except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as err:
+        raise InputError(path, f"cannot read the records table ({type(err).__name__})") from None
+
+
+def read_model(out_dir: str | Path):
+    """The fitted model an earlier run saved as model.json; errors name the file."""
+    path = Path(out_dir) / "model.json"
+    if not path.is_file():
+        raise InputError(path, "no model.json here (the run had too few records to fit a model, "
+                               "or has not been made)")
+    try:
+        return FellegiSunter.from_json(path)
+    except (OSError, ValueError, KeyError, TypeError) as err:
+        raise InputError(path, f"cannot read the saved model ({type(err).__name__})") from None

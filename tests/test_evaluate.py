@@ -3,6 +3,7 @@
 import itertools
 
 import numpy as np
+import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -75,3 +76,31 @@ def test_length_mismatch_is_an_error():
     """Label arrays of different length are refused."""
     with pytest.raises(ValueError, match="differ in length"):
         pairwise_metrics([0, 1], [0])
+
+
+def test_truth_labels_by_provenance_and_by_record_id():
+    from linker.evaluate import evaluate_entities, truth_labels
+
+    records = pd.DataFrame({"record_id": ["r1", "r2", "r3", "r4"], "source_file": ["a.xlsx"] * 4,
+                            "sheet": ["S"] * 4, "row": ["2", "3", "4", "5"], "slot": ["child"] * 4,
+                            "entity_id": ["E1", "E1", "E2", "E3"]})
+    by_prov = pd.DataFrame({"source_file": ["a.xlsx"] * 4, "sheet": ["S"] * 4, "row": ["2", "3", "4", "9"],
+                            "slot": ["child"] * 4, "person_id": ["P1", "P1", "P1", "P9"]})
+    labels, unmatched = truth_labels(records, by_prov)
+    assert labels.tolist()[:3] == ["P1", "P1", "P1"] and pd.isna(labels.iloc[3])
+    assert unmatched == 1
+    scores = evaluate_entities(records, by_prov).set_index("measure")
+    # 3 scored records, one true entity of 3 -> 3 true pairs; predicted pairs among them: (r1, r2)
+    assert scores.loc["pairwise", "precision"] == 1.0
+    assert scores.loc["pairwise", "recall"] == pytest.approx(1 / 3)
+    assert scores.loc["pairwise", "records_without_truth"] == 1
+    by_id = pd.DataFrame({"record_id": ["r1", "r2", "r3", "r4"], "person_id": ["P1", "P1", "P2", "P3"]})
+    assert evaluate_entities(records, by_id).set_index("measure").loc["bcubed", "f1"] == 1.0
+
+
+def test_truth_naming_one_record_twice_is_refused():
+    from linker.evaluate import truth_labels
+
+    records = pd.DataFrame({"record_id": ["r1"]})
+    with pytest.raises(ValueError, match="line 3"):
+        truth_labels(records, pd.DataFrame({"record_id": ["r1", "r1"], "person_id": ["P1", "P2"]}))
