@@ -1,14 +1,19 @@
 """Entities from links.
 
-For now an entity is a connected component of the link graph.  Labels are
-deterministic: entity 0 holds record 0, and entities are numbered in the
-order of their smallest record position.  (Constraints that split components
-come later; :func:`connected_entities` keeps its signature.)
+An entity starts as a connected component of the link graph.  Components that
+break a constraint — valid registration numbers more than one edit apart, a
+reviewer's cannot-link — are split by minimum cuts over the link weights
+(:func:`constrained_entities`); reviewer must-links join records outright.
+Labels are deterministic: entity 0 holds record 0, and entities are numbered
+in the order of their smallest record position.
 """
 
 from __future__ import annotations
 
+import networkx as nx
 import numpy as np
+import pandas as pd
+from rapidfuzz.distance import OSA
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
@@ -46,80 +51,180 @@ def connected_entities(n_records: int, left, right) -> np.ndarray:
 
 
 def _within_one_edit(a: str, b: str) -> bool:
-    from rapidfuzz.distance import OSA
     return OSA.distance(a, b) <= 1
 
 
-def _conflicts(ids: list[str]) -> bool:
-    """Do any two of these identifiers lie more than one edit apart?"""
-    return any(not _within_one_edit(a, b) for k, a in enumerate(ids) for b in ids[k + 1:])
+_FIRM = 2.0 ** 80    # capacity added to overwhelming links: cut only for a reviewer's cannot-link
 
 
-def constrained_entities(n_records: int, left, right, weight, ids, overwhelming: float = np.inf) -> np.ndarray:
-    """Entities from links that never join identifiers more than one edit apart without overwhelming evidence.
+def _capacity(weight: float) -> float:
+    """Capacity of a link in the cut: its likelihood ratio 2**weight (weights are log2), capped.
+
+    On the ratio scale the strongest link of a record dominates the sum of its weaker
+    ones, so a record with few details follows its best evidence, not the larger group.
+    """
+    return 2.0 ** min(max(float(weight), -30.0), 60.0)
+
+
+def _id_conflict(ids: pd.Series, skip=frozenset()) -> tuple[str, str] | None:
+    """The first pair of identifiers (most records first, then by value) more than one edit apart.
+
+    Pairs in ``skip`` (conflicts already waived) are passed over.
+    """
+    counts = ids.value_counts()
+    order = sorted(counts.index, key=lambda v: (-counts[v], v))
+    for k, a in enumerate(order):
+        for b in order[k + 1:]:
+            if (a, b) not in skip and not _within_one_edit(a, b):
+                return a, b
+    return None
+
+
+def _split_component(members: np.ndarray, edges: pd.DataFrame, ids: np.ndarray,
+                     cannot: list[tuple[int, int]], must: list[tuple[int, int]],
+                     overwhelming: float) -> tuple[list[np.ndarray], list[tuple[int, int]]]:
+    """Split one component by minimum cuts until no constraint is broken.
+
+    Links carry their weight as capacity (overwhelming links get :data:`_FIRM`
+    more; must-links are uncuttable).  Each broken constraint is resolved by a
+    minimum cut between the two sides: for identifiers, all records holding
+    one identifier against all records holding the other.  A constraint whose
+    cut would have to go through overwhelming links (identifiers) or must-links
+    (reviewer decisions) stays broken and is returned.
+    """
+    graph = nx.Graph()
+    graph.add_nodes_from(int(m) for m in members)
+    for a, b, w in edges[["left", "right", "weight"]].itertuples(index=False):
+        cap = _capacity(w) + (_FIRM if w >= overwhelming else 0.0)
+        graph.add_edge(int(a), int(b), capacity=cap)
+    for a, b in must:
+        graph.add_edge(int(a), int(b))                 # no capacity: cannot be cut
+    waived: set = set()                                # reviewer pairs that cannot be cut
+    waived_ids: set = set()                            # identifier pairs held by overwhelming links
+    unresolved: list[tuple[int, int]] = []
+    while True:
+        task = None
+        for part in sorted((sorted(c) for c in nx.connected_components(graph)), key=lambda c: c[0]):
+            part_set = set(part)
+            for a, b in cannot:
+                if a in part_set and b in part_set and (a, b) not in waived:
+                    task = ("r", [a], [b], np.inf)
+                    break
+            if task:
+                break
+            held = pd.DataFrame({"node": part, "id": ids[part]})
+            held = held[held["id"] != ""]
+            pair = _id_conflict(held["id"], waived_ids) if held["id"].nunique() > 1 else None
+            if pair is not None:
+                task = ("i", held.loc[held["id"] == pair[0], "node"].tolist(),
+                        held.loc[held["id"] == pair[1], "node"].tolist(), _FIRM)
+                break
+        if task is None:
+            break
+        kind, side_a, side_b, limit = task
+        flow = graph.copy()
+        for x in side_a:
+            flow.add_edge("source", x)
+        for y in side_b:
+            flow.add_edge(y, "sink")
+        try:
+            value, (reach, _) = nx.minimum_cut(flow, "source", "sink")
+        except nx.NetworkXUnbounded:
+            value, reach = np.inf, None
+        if value >= limit:                             # only firm or uncuttable links hold them together
+            if kind == "r":
+                waived.add((side_a[0], side_b[0]))
+                unresolved.append((side_a[0], side_b[0]))
+            else:
+                waived_ids.add((ids[side_a[0]], ids[side_b[0]]))
+            continue
+        cut = [(u, v) for u, v in graph.edges() if (u in reach) != (v in reach)]
+        graph.remove_edges_from(cut)
+    parts = [np.array(sorted(c), dtype=np.int64) for c in nx.connected_components(graph)]
+    undecided = _undecided(parts, edges, ids, must)
+    if undecided:                      # their links are cut too; what they bridged falls apart
+        graph.remove_edges_from(list(graph.edges(undecided)))
+        parts = [np.array(sorted(c), dtype=np.int64) for c in nx.connected_components(graph)]
+    return sorted(parts, key=lambda c: int(c[0])), unresolved
+
+
+def _undecided(parts: list[np.ndarray], edges: pd.DataFrame, ids: np.ndarray,
+               must: list[tuple[int, int]], margin: float = 1.0) -> list[int]:
+    """Records without an identifier whose best link into another part is about as strong
+    (within ``margin``, log2) as their best link into their own part: they become entities
+    of their own.
+
+    Such a record (say a name and nothing else) could belong to either side of the
+    split; guessing would be a wrong link half of the time, so its links go to review.
+    """
+    if len(parts) < 2 or edges.empty:
+        return []
+    part_of = {int(x): k for k, p in enumerate(parts) for x in p}
+    e = edges[["left", "right", "weight"]]
+    both = pd.concat([e.rename(columns={"left": "rec", "right": "other"}),
+                      e.rename(columns={"right": "rec", "left": "other"})], ignore_index=True)
+    both = both[both["rec"].map(ids.__getitem__) == ""]
+    if both.empty:
+        return []
+    both["same"] = both["rec"].map(part_of) == both["other"].map(part_of)
+    best = both.groupby(["rec", "same"])["weight"].max().unstack()
+    if True not in best.columns or False not in best.columns:
+        return []
+    pinned = {int(x) for pair in must for x in pair}
+    undecided = best.index[(best[False] >= best[True] - margin)].astype(int)
+    return sorted(set(undecided.tolist()) - pinned)
+
+
+def constrained_entities(n_records: int, left, right, weight, ids, overwhelming: float = np.inf,
+                         cannot=None, must=None, report: list | None = None) -> np.ndarray:
+    """Entities from links under constraints; components that break one are split by minimum cuts.
 
     ``ids`` (length ``n_records``) holds each record's trusted identifier
-    ("" when it has none, or it failed validation, or its row shows it for
-    two persons).  Components of the link graph whose trusted identifiers
-    all lie within one edit of each other are kept as they are (the common
-    case, found with one connected-components pass).  A component holding
-    identifiers further apart is rebuilt greedily: its links are taken in
-    order of falling ``weight`` and a link joins two groups only if every
-    identifier of one is within one edit of every identifier of the other,
-    or its weight is at least ``overwhelming``.  Labels as in
-    :func:`connected_entities`.
+    ("" when it has none, or it failed validation, or its row shows it for two
+    persons): two records whose identifiers lie more than one edit apart may
+    not share an entity unless links of weight >= ``overwhelming`` hold them
+    together.  ``cannot`` and ``must`` are record-position pairs from reviewer
+    decisions: a cannot-link always splits (unless must-links join the pair,
+    which is then reported), a must-link always joins.  A component breaking a
+    constraint is split by removing its weakest links — a minimum cut between
+    the conflicting records, weights as capacities — never by dropping
+    records.  Components without conflicts stay as one connected-components
+    pass found them.  Reviewer cannot-links that could not be honoured are
+    appended to ``report``.  Labels as in :func:`connected_entities`.
     """
     left = np.asarray(left, dtype=np.int64)
     right = np.asarray(right, dtype=np.int64)
     weight = np.asarray(weight, dtype=np.float64)
     ids = np.asarray(ids, dtype=object)
-    labels = connected_entities(n_records, left, right)
-    if left.size == 0:
+    cannot = [] if cannot is None else [tuple(map(int, p)) for p in cannot]
+    must = [] if must is None else [tuple(map(int, p)) for p in must]
+    must_l = np.array([a for a, _ in must], dtype=np.int64)
+    must_r = np.array([b for _, b in must], dtype=np.int64)
+    labels = connected_entities(n_records, np.concatenate([left, must_l]), np.concatenate([right, must_r]))
+    if n_records == 0:
         return labels
     has = ids != ""
-    frame = {"label": labels[has], "id": ids[has]}
-    import pandas as pd
-    distinct = pd.DataFrame(frame).drop_duplicates()
+    distinct = pd.DataFrame({"label": labels[has], "id": ids[has]}).drop_duplicates()
     multi = distinct["label"].value_counts()
-    suspect = multi.index[multi.to_numpy() > 1].to_numpy()
-    if suspect.size == 0:
-        return labels
-    by_label = distinct[distinct["label"].isin(suspect)].groupby("label")["id"].agg(sorted)
-    bad = [lab for lab, vals in by_label.items() if _conflicts(vals)]
+    suspect = set(multi.index[multi.to_numpy() > 1].tolist())
+    bad = {lab for lab, vals in distinct[distinct["label"].isin(suspect)].groupby("label")["id"]
+           if _id_conflict(vals) is not None}
+    bad |= {int(labels[a]) for a, b in cannot if labels[a] == labels[b]}
     if not bad:
         return labels
     out = labels.copy()
     next_label = int(labels.max()) + 1
-    link_label = labels[left]
+    edges = pd.DataFrame({"left": left, "right": right, "weight": weight, "label": labels[left]})
     for lab in sorted(bad):
         members = np.flatnonzero(labels == lab)
-        parent = {int(m): int(m) for m in members}
-        group_ids = {int(m): ({ids[m]} if ids[m] else set()) for m in members}
-
-        def find(x):
-            while parent[x] != x:
-                parent[x] = parent[parent[x]]
-                x = parent[x]
-            return x
-
-        sel = np.flatnonzero(link_label == lab)
-        order = sel[np.lexsort((right[sel], left[sel], -weight[sel]))]
-        for k in order:
-            a, b = find(int(left[k])), find(int(right[k]))
-            if a == b:
-                continue
-            if weight[k] < overwhelming and any(not _within_one_edit(x, y)
-                                                for x in group_ids[a] for y in group_ids[b]):
-                continue
-            parent[b] = a
-            group_ids[a] |= group_ids.pop(b)
-        roots = np.array([find(int(m)) for m in members])
-        _, sub = np.unique(roots, return_inverse=True)
-        # keep the first group on the old label, give the others new labels
-        first_sub = sub[0]
-        for s_ in np.unique(sub):
-            if s_ == first_sub:
-                continue
-            out[members[sub == s_]] = next_label
+        member_set = set(members.tolist())
+        parts, unresolved = _split_component(
+            members, edges[edges["label"] == lab], ids,
+            [p for p in cannot if p[0] in member_set and p[1] in member_set],
+            [p for p in must if p[0] in member_set], overwhelming)
+        if report is not None:
+            report.extend(unresolved)
+        for part in parts[1:]:                         # the first part keeps the old label
+            out[part] = next_label
             next_label += 1
     return relabel_by_first(out)
