@@ -15,6 +15,12 @@ config does not know, together with a matching ``alternate.toml``.
 The people, the rows and the injected defects depend only on ``seed`` and
 ``n_families``; the vocabulary only changes header names, file names, sheet
 titles and the member-type values of the tracing file.
+
+Besides the messiness (``truth/defects.csv``) the delivery carries labelled
+impossible or contradictory records, one set per check rule
+(``truth/injected.csv``, :class:`InjectionPlanner`): a dry render shows which
+cells are clean, the injections are placed there, and the final render gives
+the same messiness.
 """
 
 from __future__ import annotations
@@ -24,6 +30,7 @@ import csv
 import datetime as dt
 import io
 import json
+import math
 import re
 import shutil
 import unicodedata
@@ -484,6 +491,7 @@ class Row:
     extras: dict
     order: tuple
     kind: str = ""
+    added: bool = False       # added by a labelled injection (rendered with its own random stream)
 
 
 class Scenario:
@@ -740,9 +748,10 @@ def tracing_row(sc: Scenario, fam: Family, pid: str, k: int) -> Row:
 def legal_row(sc: Scenario, fam: Family, pid: str, rng: random.Random, later: bool = False) -> Row:
     when = fam.intake + dt.timedelta(days=rng.randint(3, 60) + (rng.randint(30, 90) if later else 0))
     when = min(when, LAST_EVENT)
-    kids = [sc.persons[c].given.split()[0] for c in fam.children if fam.held_with[c] == pid or rng.random() < 0.5]
+    kids = [c for c in fam.children if fam.held_with[c] == pid or rng.random() < 0.5]
     return Row("legal", str(when.year), {"parent": pid}, {"intake_date": when, "location": fam.station},
-               {"children_named": ", ".join(kids), "interpreter": rng.choice(["", "", "yes", "no"])},
+               {"children_named": ", ".join(sc.persons[c].given.split()[0] for c in kids),
+                "named_pids": kids, "interpreter": rng.choice(["", "", "yes", "no"])},
                (when, fam.fid, pid), kind="repeat visit" if later else "")
 
 
@@ -751,6 +760,38 @@ def release_row(fam: Family, child: str, adult: str, when: dt.date, k: int) -> R
     return Row("releases", quarter, {"child": child, "parent": adult},
                {"release_date": when, "status": "reunified"}, {"released_to": "parent"},
                (when, fam.fid, k))
+
+
+def extra_parent_rows(sc: Scenario, rows: list[Row], seed: int, n_children: int = 16) -> list[Row]:
+    """too_many_parents: for a few children, two release rows that each name an unrelated adult as parent.
+
+    The children already have a row naming their own parent, so with these they show three parents.
+    Children with at most 3 records and adults with at most 4 are chosen, so everyone stays within
+    2-5 records; each adult is at least 16 years older than the child and from another family.
+    """
+    rng = random.Random(f"{seed}-inject-rows")
+    P = sc.persons
+    counts = person_counts(rows)
+    claimed = {r.slots["child"] for r in rows if "child" in r.slots and "parent" in r.slots}
+    kids = [pid for pid, p in P.items() if p.role == "child" and pid in claimed and counts[pid] <= 3]
+    adults = [pid for pid, p in P.items() if p.role != "child" and counts[pid] <= 4]
+    taken: set = set()
+    out = []
+    for c in rng.sample(kids, min(n_children, len(kids))):
+        child = P[c]
+        options = [a for a in adults if a not in taken and P[a].fid != child.fid
+                   and add_years(P[a].dob, 16) <= child.dob]
+        if len(options) < 2:
+            continue
+        for j, a in enumerate(rng.sample(options, 2)):
+            taken.add(a)
+            when = min(child.placement + dt.timedelta(days=rng.randint(20, 150)), LAST_EVENT)
+            quarter = f"{when.year}-Q{(when.month - 1) // 3 + 1}"
+            out.append(Row("releases", quarter, {"child": c, "parent": a},
+                           {"release_date": when, "status": "released"},
+                           {"released_to": rng.choice(["parent", "relative", "sponsor"])},
+                           (when, child.fid, f"x{j}"), kind="extra parent", added=True))
+    return out
 
 
 def person_counts(rows: list[Row]) -> Counter:
@@ -809,11 +850,12 @@ def balance_counts(sc: Scenario, rows: list[Row], rng: random.Random) -> None:
 class Writer:
     """Turns true values into written cells, logging every injected defect."""
 
-    def __init__(self, seed: int, sc: Scenario):
+    def __init__(self, seed, sc: Scenario, defects: list | None = None):
         self.rng = random.Random(f"{seed}-mess")
         self.sc = sc
-        self.defects: list[dict] = []
+        self.defects: list[dict] = [] if defects is None else defects
         self.where: dict = {}
+        self.last_reg: tuple = (None, None)    # (8 digits as written, style) of the last reg() call
 
     def defect(self, slot: str, pid: str, fld: str, kind: str, written="", true=""):
         self.defects.append({**self.where, "slot": slot, "person_id": pid, "field": fld,
@@ -825,6 +867,7 @@ class Writer:
         rng = self.rng
         if force_reg is None and rng.random() < prof["reg_missing"]:
             self.defect(slot, p.pid, "reg_no", "missing", "", p.reg)
+            self.last_reg = (None, None)
             return None
         reg = force_reg or p.reg
         if force_reg:
@@ -842,6 +885,7 @@ class Writer:
             self.defect(slot, p.pid, "reg_no", "adjacent digits swapped", reg, p.reg)
         style = weighted(rng, prof["reg_styles"])
         value = format_reg(reg, style)
+        self.last_reg = (reg, style)
         if style in ("number", "stripped_text", "float_text", "sci") and reg.startswith("0"):
             self.defect(slot, p.pid, "reg_no", "leading zeros lost", value, p.reg)
         if style == "sci":
@@ -965,7 +1009,10 @@ def full_name(given: str, family: str, style: str) -> str:
 class Delivery:
     """Renders the planned rows into files and collects the truth."""
 
-    def __init__(self, out_dir: Path, vocabulary: str, seed: int, n_families: int):
+    def __init__(self, out_dir: Path, vocabulary: str, seed: int, n_families: int,
+                 plan: dict | None = None, dry: bool = False):
+        """``plan``: cell overrides of the labelled injections, {(file, sheet, row, slot): {field: value}}
+        (slot "" for the row's event dates).  ``dry``: render without writing files."""
         if vocabulary not in VOCAB:
             raise ValueError(f"vocabulary must be one of {', '.join(VOCAB)}, got {vocabulary!r}")
         self.out = Path(out_dir)
@@ -974,10 +1021,41 @@ class Delivery:
         self.vocab = VOCAB[vocabulary]
         self.sc = Scenario(seed, n_families)
         self.rows = plan_rows(self.sc, seed)
-        self.w = Writer(seed, self.sc)
+        self.rows += extra_parent_rows(self.sc, self.rows, seed)
+        self.w_main = Writer(seed, self.sc)
+        self.w_added = Writer(f"{seed}-added", self.sc, self.w_main.defects)   # rows added by injections
+        self.w = self.w_main
         self.layout_rng = random.Random(f"{seed}-layout")
         self.truth: list[dict] = []
         self.files: dict[str, int] = {}
+        self.plan = plan or {}
+        self.dry = dry
+        self.seen: dict[tuple, dict] = {}      # (file, sheet, row, slot) -> what was written, in render order
+        self.cur: tuple = ()
+
+    # -- injection hooks -----------------------------------------------------------
+    def begin(self, row: Row, rel: str, sheet: str, r: int):
+        """Start rendering ``row`` at file row ``r``: pick its random stream, set the defect location."""
+        self.w = self.w_added if row.added else self.w_main
+        self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+        self.cur = (rel, sheet, r, row)
+
+    def override(self, slot: str, fld: str, value):
+        """The planned injection for ``fld`` of ``slot`` on the current row, else ``value``."""
+        rel, sheet, r, _ = self.cur
+        return self.plan.get((rel, sheet, r, slot), {}).get(fld, value)
+
+    def events(self) -> dict:
+        """The current row's event values with planned injections applied."""
+        rel, sheet, r, row = self.cur
+        return {**row.events, **self.plan.get((rel, sheet, r, ""), {})}
+
+    def noted(self, slot: str, p: Person, cells: dict, dob, age=None):
+        """Remember what one person slot shows (the injection planner reads this)."""
+        rel, sheet, r, row = self.cur
+        self.seen[(rel, sheet, r, slot)] = {
+            "pid": p.pid, "row": row, "reg": cells["reg"], "reg_digits": cells["reg_digits"],
+            "reg_style": cells["reg_style"], "dob": dob, "age": age, "sex": cells["sex"]}
 
     # -- helpers ---------------------------------------------------------------
     def rows_of(self, source: str, sheet: str | None = None) -> list[Row]:
@@ -998,7 +1076,10 @@ class Delivery:
         given, family, swapped = self.w.names(prof, slot, p)
         dob = self.w.dob(prof, slot, p)
         sex = self.w.sex(prof, slot, p, sex_styles)
-        return {"reg": reg, "given": given, "family": family, "swapped": swapped, "dob": dob, "sex": sex}
+        digits, style = self.w.last_reg
+        return {"reg": self.override(slot, "reg", reg), "given": given, "family": family, "swapped": swapped,
+                "dob": self.override(slot, "dob", dob), "sex": self.override(slot, "sex", sex),
+                "reg_digits": digits, "reg_style": style}
 
     def parent_reg_for_child(self, prof: dict, row: Row) -> str | None:
         if "parent" in row.slots and self.w.rng.random() < prof.get("parent_reg_both", 0):
@@ -1045,7 +1126,7 @@ class Delivery:
                     for c, h in enumerate(header, 1):
                         ws.cell(row=r, column=c, value=h)
                     r += 1
-                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                self.begin(row, rel, sheet, r)
                 values = {}
                 force = self.parent_reg_for_child(prof, row)
                 for slot in ("child", "parent"):
@@ -1061,6 +1142,9 @@ class Delivery:
                             self.w.defect(slot, p.pid, "birth_date", "age instead of birth date",
                                           values[(slot, "age")], p.dob.isoformat())
                         dob = None
+                    if slot == "child" and lay["age"]:
+                        values[(slot, "age")] = self.override(slot, "age", values.get((slot, "age")))
+                    self.noted(slot, p, cells, dob, values.get((slot, "age")))
                     if dob is not None and self.w.rng.random() < lay["dob_text"]:
                         dob = fmt_date(dob, "dmy")
                     values[(slot, "reg_no")] = cells["reg"]
@@ -1070,7 +1154,7 @@ class Delivery:
                     values[(slot, "birth_date")] = dob
                     values[(slot, "sex")] = cells["sex"]
                     self.record(rel, sheet, r, slot, p.pid)
-                for k, val in row.events.items():
+                for k, val in self.events().items():
                     values[("event", k)] = val
                 values[("unmapped", "remarks")] = row.extras.get("remarks", "")
                 for c, key in enumerate(cols, 1):
@@ -1102,7 +1186,7 @@ class Delivery:
                 ws.cell(row=3, column=c, value=h)
             r = 4
             for row in self.rows_of("omc", sheet):
-                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                self.begin(row, rel, sheet, r)
                 p = self.sc.persons[row.slots["child"]]
                 cells = self.person_cells(prof, "child", p, False)
                 g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
@@ -1113,12 +1197,15 @@ class Delivery:
                         self.w.defect("child", p.pid, "birth_date", "age instead of birth date", age,
                                       p.dob.isoformat())
                     dob = None
+                age = self.override("child", "age", age)
+                self.noted("child", p, cells, dob, age)
+                events = self.events()
                 date_style = weighted(self.w.rng, {"cell": 40, "serial": 25, "text": 35})
                 values = {("child", "reg_no"): cells["reg"], ("child", "given_name"): g,
                           ("child", "family_name"): f, ("child", "birth_date"): omc_date(dob, date_style, self.w.rng),
                           ("child", "age"): age, ("child", "sex"): cells["sex"],
-                          ("event", "placement_date"): omc_date(row.events["placement_date"], date_style, self.w.rng),
-                          ("event", "location"): row.events["location"], ("event", "status"): row.events["status"],
+                          ("event", "placement_date"): omc_date(events["placement_date"], date_style, self.w.rng),
+                          ("event", "location"): events["location"], ("event", "status"): events["status"],
                           ("unmapped", "caseworker"): row.extras.get("caseworker", "")}
                 for c, (o, fl, _) in enumerate(cols, 1):
                     put(ws, r, c, values.get((o, fl)), "m/d/yyyy")
@@ -1139,17 +1226,18 @@ class Delivery:
         members = self.vocab["member_values"]
         for row in self.rows_of("tracing"):
             n = len(lines) + 1
-            self.w.where = {"source_file": rel, "sheet": stem, "row": n}
+            self.begin(row, rel, stem, n)
             p = self.sc.persons[row.slots["member"]]
             slot = "child" if p.role == "child" else "parent"
             cells = self.person_cells(prof, slot, p, True)
+            self.noted(slot, p, cells, cells["dob"])
             g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
             name = full_name(g, f, "FAMILY, Given" if self.w.rng.random() < 0.15 else "Given Family")
             if to_cp1252(name) != name:
                 self.w.defect(slot, p.pid, "name", "transliterated for cp1252", to_cp1252(name), name)
                 name = to_cp1252(name)
             dob = fmt_date(cells["dob"], "dmy" if self.w.rng.random() < 0.8 else "dmy_short") if cells["dob"] else ""
-            rel_date = row.events.get("release_date")
+            rel_date = self.events().get("release_date")
             mtype = self.w.rng.choice(members[p.role])
             lines.append([row.extras["case_id"], mtype, cells["reg"] or "", name, dob, cells["sex"],
                           row.events["status"], fmt_date(rel_date, "dmy") if rel_date else ""])
@@ -1179,9 +1267,10 @@ class Delivery:
             r = 5
             for row in self.rows_of("legal", sheet):
                 n_file += 1
-                self.w.where = {"source_file": rel, "sheet": name, "row": r}
+                self.begin(row, rel, name, r)
                 p = self.sc.persons[row.slots["parent"]]
                 cells = self.person_cells(prof, "parent", p, False)
+                self.noted("parent", p, cells, cells["dob"])
                 g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
                 dob = cells["dob"]
                 if dob is not None and self.w.rng.random() < 0.3:
@@ -1189,7 +1278,7 @@ class Delivery:
                 values = {("unmapped", "clinic_file"): f"LA-{sheet[2:]}-{n_file:04d}",
                           ("generic", "family_name"): f, ("generic", "given_name"): g,
                           ("generic", "birth_date"): dob, ("generic", "reg_no"): cells["reg"],
-                          ("generic", "sex"): cells["sex"], ("event", "intake_date"): row.events["intake_date"],
+                          ("generic", "sex"): cells["sex"], ("event", "intake_date"): self.events()["intake_date"],
                           ("event", "location"): row.events["location"],
                           ("unmapped", "children_named"): row.extras["children_named"],
                           ("unmapped", "interpreter"): row.extras["interpreter"]}
@@ -1226,7 +1315,7 @@ class Delivery:
             lines = [[header_name(self.vocab, o, f, v, style) for o, f, v in cols]]
             for row in self.rows_of("transfers", half):
                 n = len(lines) + 1
-                self.w.where = {"source_file": rel, "sheet": stem, "row": n}
+                self.begin(row, rel, stem, n)
                 values = {}
                 force = self.parent_reg_for_child(prof, row)
                 for slot in ("child", "parent"):
@@ -1235,13 +1324,14 @@ class Delivery:
                     p = self.sc.persons[row.slots[slot]]
                     cells = self.person_cells(prof, slot, p, True, force if slot == "child" else None,
                                               sexes[slot])
+                    self.noted(slot, p, cells, cells["dob"])
                     g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
                     values.update({(slot, "reg_no"): cells["reg"], (slot, "given_name"): g,
                                    (slot, "family_name"): f,
                                    (slot, "birth_date"): cells["dob"].isoformat() if cells["dob"] else "",
                                    (slot, "sex"): cells["sex"]})
                     self.record(rel, stem, n, slot, p.pid)
-                values[("event", "intake_date")] = row.events["intake_date"].isoformat()
+                values[("event", "intake_date")] = self.events()["intake_date"].isoformat()
                 values[("event", "location")] = row.events["location"]
                 values[("unmapped", "escort")] = row.extras["escort"]
                 lines.append([values.get((o, f)) or "" for o, f, _ in cols])
@@ -1267,7 +1357,7 @@ class Delivery:
                 ws.cell(row=2, column=c, value=h)
             r = 3
             for row in self.rows_of("releases", sheet):
-                self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
+                self.begin(row, rel, sheet, r)
                 values = {}
                 force = self.parent_reg_for_child(prof, row)
                 for slot in ("child", "parent"):
@@ -1275,6 +1365,7 @@ class Delivery:
                         continue
                     p = self.sc.persons[row.slots[slot]]
                     cells = self.person_cells(prof, slot, p, False, force if slot == "child" else None)
+                    self.noted(slot, p, cells, cells["dob"])
                     g, f = (cells["family"], cells["given"]) if cells["swapped"] else (cells["given"], cells["family"])
                     values.update({(slot, "full_name"): full_name(g, f, "Given Family"),
                                    (slot, "reg_no"): cells["reg"],
@@ -1284,8 +1375,9 @@ class Delivery:
                 if row.kind == "after cutoff":
                     self.w.defect("", "", "release_date", "event after the cutoff date",
                                   row.events["release_date"].isoformat(), "")
-                values[("event", "release_date")] = fmt_date(row.events["release_date"], "d_mon_y")
-                values[("event", "status")] = row.events["status"]
+                events = self.events()
+                values[("event", "release_date")] = fmt_date(events["release_date"], "d_mon_y")
+                values[("event", "status")] = events["status"]
                 values[("unmapped", "released_to")] = row.extras["released_to"]
                 for c, (o, fl, _) in enumerate(cols, 1):
                     put(ws, r, c, values.get((o, fl)), "dd/mm/yyyy")
@@ -1330,7 +1422,16 @@ class Delivery:
         self.save_xlsx(wb, str(rel), base=self.out)
         return out
 
-    def write_truth(self, roster: list[dict]):
+    def render(self):
+        """Render every agency file (written unless ``dry``)."""
+        self.write_custody()
+        self.write_omc()
+        self.write_tracing()
+        self.write_legal()
+        self.write_transfers()
+        self.write_releases()
+
+    def write_truth(self, roster: list[dict], injected: list[list]):
         tdir = self.out / "truth"
         tdir.mkdir(parents=True, exist_ok=True)
         appearing = {t["person_id"] for t in self.truth}
@@ -1340,15 +1441,19 @@ class Delivery:
                     [[p.pid, p.fid, p.role, p.given, p.family, p.dob.isoformat(), p.sex, p.reg] for p in persons])
         write_table(tdir / "records.csv", ["source_file", "sheet", "row", "slot", "person_id"],
                     [[t["source_file"], t["sheet"], t["row"], t["slot"], t["person_id"]] for t in self.truth])
-        rel_rows = [[c, a] for f in self.sc.families for c in f.children for a in f.adults]
-        write_table(tdir / "relations.csv", ["child_person_id", "parent_person_id"], rel_rows)
+        pairs = [(c, a) for f in self.sc.families for c in f.children for a in f.adults]
+        rel_rows = [[c, a, e] for (c, a), e in zip(pairs, relation_evidence(self.seen, pairs))]
+        write_table(tdir / "relations.csv", ["child_person_id", "parent_person_id", "evidence"], rel_rows)
         write_table(tdir / "roster.csv", ["roster_row", "person_id", "status"],
                     [[r["roster_row"], r["person_id"], r["status"]] for r in roster])
         keys = ["source_file", "sheet", "row", "slot", "person_id", "field", "kind", "written", "true_value"]
-        write_table(tdir / "defects.csv", keys, [[d.get(k, "") for k in keys] for d in self.w.defects])
+        write_table(tdir / "defects.csv", keys, [[d.get(k, "") for k in keys] for d in self.w_main.defects])
+        write_table(tdir / "injected.csv", INJECTED_COLUMNS, injected)
 
     # -- output plumbing -----------------------------------------------------------------
     def save_xlsx(self, wb, rel: str, base: Path | None = None):
+        if self.dry:
+            return
         path = (base or self.out / "delivery") / rel
         path.parent.mkdir(parents=True, exist_ok=True)
         wb.properties.creator = "Northern March sample generator"
@@ -1359,6 +1464,8 @@ class Delivery:
         path.write_bytes(repack_zip(buf.getvalue()))
 
     def save_csv(self, lines: list[list], rel: str, encoding: str):
+        if self.dry:
+            return
         path = self.out / "delivery" / rel
         path.parent.mkdir(parents=True, exist_ok=True)
         text = io.StringIO()
@@ -1454,6 +1561,406 @@ class Delivery:
         (self.out / "alternate.toml").write_text("\n".join(lines), encoding="utf-8")
 
 
+# ---------------------------------------------------------------------------
+# Labelled injections: impossible or contradictory records, one set per check rule
+# ---------------------------------------------------------------------------
+RULES = ("self_parent", "parent_too_young", "release_before_intake", "event_after_cutoff", "event_before_birth",
+         "sex_conflict", "birth_date_conflict", "age_conflict", "too_many_parents", "shared_reg_no")
+INJECT_PER_RULE = 18
+CUTOFF = dt.date(2026, 10, 31)                           # [rules] cutoff_date of configs/sample.toml
+RECOVERABLE_REG = {"leading zeros lost"}    # the digits can still be read back (scientific notation may not)
+ZERO_LOSING = ("number", "stripped_text", "float_text", "sci", "sci_lossy")
+SEX_FLIP = {"M": "F", "F": "M", "m": "f", "f": "m", "Male": "Female", "Female": "Male", "masc": "fem",
+            "fem": "masc", "Masc": "Fem", "Fem": "Masc", "Boy": "Girl", "Girl": "Boy", "1": "2", "2": "1"}
+INJECTED_COLUMNS = ["rule", "source_file", "sheet", "row", "slot", "person_id", "field", "written", "true_value"]
+
+
+def iso(d) -> str:
+    return d.isoformat() if d else ""
+
+
+def years_between(a: dt.date, b: dt.date) -> float:
+    return (b - a).days / 365.25
+
+
+class InjectionPlanner:
+    """Chooses the injected cells from what a dry render wrote, so the messiness stays as it was.
+
+    Injections change attributes, not identity: an injected person cell keeps its names, and
+    its register number (except for self_parent / shared_reg_no, where the number is the
+    injection) is exact and shared with another record of the same person, so linkage can
+    still place it.  Each row and each person takes part in at most one injection.
+    """
+
+    def __init__(self, d: "Delivery", seed):
+        self.d = d
+        self.P = d.sc.persons
+        self.fams = {f.fid: f for f in d.sc.families}
+        self.rng = random.Random(f"{seed}-inject")
+        self.seen = d.seen
+        self.kinds: dict[tuple, set] = {}
+        for x in d.w_main.defects:
+            self.kinds.setdefault((x["source_file"], x["sheet"], x["row"], x["slot"]), set()).add(
+                (x["field"], x["kind"]))
+        self.by_person: dict[str, list] = {}
+        self.by_row: dict[tuple, dict] = {}
+        for key, info in self.seen.items():
+            self.by_person.setdefault(info["pid"], []).append(key)
+            self.by_row.setdefault(key[:3], {})[key[3]] = key
+        self.used_rows: set = set()
+        self.used_persons: set = set()
+        self.plan: dict[tuple, dict] = {}
+        self.lines: list[list] = []
+
+    # -- what a cell shows ------------------------------------------------------
+    def info(self, key) -> dict:
+        return self.seen[key]
+
+    def row_of(self, key) -> Row:
+        return self.seen[key]["row"]
+
+    def defect_fields(self, key) -> set:
+        return {f for f, _ in self.kinds.get(key, ())}
+
+    def clean(self, key) -> bool:
+        """No messiness defect at all, and reg, birth date and sex are written."""
+        i = self.seen[key]
+        return not self.kinds.get(key) and bool(i["reg_digits"]) and i["dob"] is not None and bool(i["sex"])
+
+    def reg_ok(self, key) -> bool:
+        """The cell shows the person's own number, readable back to 8 digits."""
+        i = self.seen[key]
+        bad = {k for f, k in self.kinds.get(key, ()) if f == "reg_no"} - RECOVERABLE_REG
+        return bool(i["reg_digits"]) and not bad
+
+    def anchored(self, key) -> bool:
+        """Another record of the same person shows the person's own number."""
+        return any(k != key and self.reg_ok(k) for k in self.by_person[self.seen[key]["pid"]])
+
+    def free_row(self, rkey) -> bool:
+        slots = self.by_row[rkey]
+        row = self.seen[next(iter(slots.values()))]["row"]
+        return (rkey not in self.used_rows and row.kind not in ("after cutoff", "extra parent")
+                and not any(self.seen[k]["pid"] in self.used_persons for k in slots.values()))
+
+    def take_row(self, rkey):
+        self.used_rows.add(rkey)
+        self.used_persons |= {self.seen[k]["pid"] for k in self.by_row[rkey].values()}
+
+    def pair_rows(self, sources=("custody", "transfers", "releases")) -> list[tuple]:
+        return [rk for rk, slots in self.by_row.items() if {"child", "parent"} <= set(slots)
+                and self.seen[slots["child"]]["row"].source in sources]
+
+    def rows_of(self, source: str) -> list[tuple]:
+        return [rk for rk, slots in self.by_row.items()
+                if self.seen[next(iter(slots.values()))]["row"].source == source]
+
+    # -- bookkeeping --------------------------------------------------------------
+    def line(self, rule: str, key, fld: str, written, true):
+        rel, sheet, r, slot = key
+        self.lines.append([rule, rel, sheet, r, slot, self.seen[key]["pid"], fld,
+                           "" if written is None else str(written), "" if true is None else str(true)])
+
+    def put(self, key, fld: str, value):
+        self.plan.setdefault(key, {})[fld] = value
+
+    def fill(self, candidates: list, n: int, inject) -> int:
+        """Try ``inject(candidate)`` on the candidates in a seeded order until ``n`` succeeded."""
+        order = list(candidates)
+        self.rng.shuffle(order)
+        done = 0
+        for c in order:
+            if done >= n:
+                break
+            if inject(c):
+                done += 1
+        return done
+
+    def run(self, n: int = INJECT_PER_RULE) -> tuple[dict, list[list]]:
+        self.event_after_cutoff_existing()
+        self.self_parent(n)
+        self.too_many_parents()
+        for rule in (self.parent_too_young, self.release_before_intake, self.event_after_cutoff,
+                     self.event_before_birth, self.shared_reg_no, self.sex_conflict, self.birth_date_conflict,
+                     self.age_conflict):
+            rule(n)
+        self.lines.sort(key=lambda x: (RULES.index(x[0]), x[1], x[2], int(x[3]), x[4]))
+        return self.plan, self.lines
+
+    # -- the rules ----------------------------------------------------------------
+    def self_parent(self, n: int):
+        """Rows whose child and parent show one number: the messiness ones, topped up to ``n``."""
+        def same(rk):
+            c, p = self.seen[self.by_row[rk]["child"]], self.seen[self.by_row[rk]["parent"]]
+            return (c["reg_digits"] and c["reg_digits"] == p["reg_digits"]
+                    and not {"sci", "sci_lossy"} & {c["reg_style"], p["reg_style"]})
+
+        def label(rk, child_written):
+            ck, pk = self.by_row[rk]["child"], self.by_row[rk]["parent"]
+            self.line("self_parent", ck, "reg_no", child_written, self.P[self.seen[ck]["pid"]].reg)
+            self.line("self_parent", pk, "reg_no", self.seen[pk]["reg"], self.P[self.seen[pk]["pid"]].reg)
+            self.take_row(rk)
+
+        existing = [rk for rk in self.pair_rows() if same(rk)]
+        for rk in existing:
+            label(rk, self.seen[self.by_row[rk]["child"]]["reg"])
+
+        def inject(rk):
+            ck, pk = self.by_row[rk]["child"], self.by_row[rk]["parent"]
+            if not (self.free_row(rk) and self.clean(ck) and self.anchored(ck) and self.clean(pk)):
+                return False
+            self.put(ck, "reg", self.seen[pk]["reg"])
+            label(rk, self.seen[pk]["reg"])
+            return True
+        self.fill(self.pair_rows(), n - len(existing), inject)
+
+    def parent_too_young(self, n: int):
+        """Change one birth date on a child+parent row so the parent is 10.5-11.5 years older."""
+        def inject(rk):
+            ck, pk = self.by_row[rk]["child"], self.by_row[rk]["parent"]
+            child, parent = self.P[self.seen[ck]["pid"]], self.P[self.seen[pk]["pid"]]
+            gap = years_between(parent.dob, child.dob)
+            if not self.free_row(rk) or gap >= 20:
+                return False
+            which = "parent" if self.rng.random() < 0.67 else "child"
+            mod, other = (pk, ck) if which == "parent" else (ck, pk)
+            if not (self.clean(mod) and self.anchored(mod) and self.seen[other]["dob"] is not None
+                    and "birth_date" not in self.defect_fields(other)):
+                return False
+            k = math.ceil(gap - 11.5)
+            new_parent = add_years(parent.dob, k) if which == "parent" else parent.dob
+            new_child = add_years(child.dob, -k) if which == "child" else child.dob
+            if not 10.0 <= years_between(new_parent, new_child) <= 11.6:
+                return False
+            new = new_parent if which == "parent" else new_child
+            self.put(mod, "dob", new)
+            self.line("parent_too_young", mod, "birth_date", iso(new), iso(self.P[self.seen[mod]["pid"]].dob))
+            other_dob = iso(self.P[self.seen[other]["pid"]].dob)
+            self.line("parent_too_young", other, "birth_date", other_dob, other_dob)
+            self.take_row(rk)
+            return True
+        self.fill(self.pair_rows(), n, inject)
+
+    def release_before_intake(self, n: int):
+        """Custody rows (intake and release columns): release 3-45 days before intake."""
+        def inject(rk):
+            if not self.free_row(rk):
+                return False
+            slots = self.by_row[rk]
+            row = self.row_of(next(iter(slots.values())))
+            child = self.P[row.slots["child"]]
+            new = row.events["intake_date"] - dt.timedelta(days=self.rng.randint(3, 45))
+            if new <= child.dob:
+                return False
+            self.put(rk + ("",), "release_date", new)
+            for key in slots.values():
+                self.line("release_before_intake", key, "release_date", iso(new), iso(row.events["release_date"]))
+            self.take_row(rk)
+            return True
+        self.fill(self.rows_of("custody"), n, inject)
+
+    def event_after_cutoff_existing(self):
+        """The messiness already books three releases after the cutoff: label them."""
+        for rk, slots in self.by_row.items():
+            row = self.row_of(next(iter(slots.values())))
+            if row.kind == "after cutoff":
+                for key in slots.values():
+                    self.line("event_after_cutoff", key, "release_date", iso(row.events["release_date"]), "")
+                self.take_row(rk)
+
+    def event_after_cutoff(self, n: int):
+        """Custody and tracing release dates, legal-aid intake dates 3-100 days after the cutoff."""
+        have = len({tuple(x[1:4]) for x in self.lines if x[0] == "event_after_cutoff"})
+        plan = [("custody", "release_date"), ("tracing", "release_date"), ("legal", "intake_date")]
+        for i, (source, fld) in enumerate(plan):
+            def inject(rk, fld=fld):
+                if not self.free_row(rk):
+                    return False
+                slots = self.by_row[rk]
+                row = self.row_of(next(iter(slots.values())))
+                new = CUTOFF + dt.timedelta(days=self.rng.randint(3, 100))
+                self.put(rk + ("",), fld, new)
+                for key in slots.values():
+                    self.line("event_after_cutoff", key, fld, iso(new), iso(row.events.get(fld)))
+                self.take_row(rk)
+                return True
+            share = (n - have) // len(plan) + (1 if i < (n - have) % len(plan) else 0)
+            self.fill(self.rows_of(source), share, inject)
+
+    def event_before_birth(self, n: int):
+        """An intake or placement date ten years early (a year typo) on a child's row, before the birth."""
+        plan = [("omc", "placement_date"), ("transfers", "intake_date"), ("custody", "intake_date")]
+        for i, (source, fld) in enumerate(plan):
+            def inject(rk, fld=fld):
+                slots = self.by_row[rk]
+                if not self.free_row(rk) or "child" not in slots:
+                    return False
+                ck = slots["child"]
+                row, child = self.row_of(ck), self.P[self.seen[ck]["pid"]]
+                if any(self.seen[k]["age"] is not None for k in slots.values()) or not self.clean(ck):
+                    return False
+                new = add_years(row.events[fld], -10)
+                if new >= child.dob - dt.timedelta(days=30):
+                    return False
+                self.put(rk + ("",), fld, new)
+                self.line("event_before_birth", ck, fld, iso(new), iso(row.events[fld]))
+                self.take_row(rk)
+                return True
+            self.fill(self.rows_of(source), n // len(plan) + (1 if i < n % len(plan) else 0), inject)
+
+    def one_record(self, n: int, inject, need=lambda key: True):
+        """Run ``inject(key)`` on free, clean, anchored single person cells."""
+        def wrapped(key):
+            if not (self.free_row(key[:3]) and self.clean(key) and self.anchored(key) and need(key)):
+                return False
+            if not inject(key):
+                return False
+            self.used_rows.add(key[:3])
+            self.used_persons.add(self.seen[key]["pid"])
+            return True
+        keys = [k for k in self.seen if not self.row_of(k).added]
+        self.fill(keys, n, wrapped)
+
+    def sex_conflict(self, n: int):
+        """Flip the written sex of one record of a person with 3+ records."""
+        def inject(key):
+            written = SEX_FLIP[self.seen[key]["sex"]]
+            self.put(key, "sex", written)
+            self.line("sex_conflict", key, "sex", written, self.P[self.seen[key]["pid"]].sex)
+            return True
+        self.one_record(n, inject, lambda k: len(self.by_person[self.seen[k]["pid"]]) >= 3
+                        and self.seen[k]["sex"] in SEX_FLIP)
+
+    def birth_date_conflict(self, n: int):
+        """Write another day (5+ days away) or month (2+ away) of the same year on one record."""
+        def inject(key):
+            p = self.P[self.seen[key]["pid"]]
+            d = p.dob
+            if self.rng.random() < 0.5:
+                days = [x for x in range(1, 29) if abs(x - d.day) >= 5]
+                new = d.replace(day=self.rng.choice(days))
+            else:
+                months = [x for x in range(1, 13) if abs(x - d.month) >= 2]
+                new = d.replace(month=self.rng.choice(months), day=min(d.day, 28))
+            if new >= self.fams[p.fid].intake - dt.timedelta(days=30):
+                return False
+            self.put(key, "dob", new)
+            self.line("birth_date_conflict", key, "birth_date", iso(new), iso(d))
+            return True
+        self.one_record(n, inject)
+
+    def age_conflict(self, n: int):
+        """Write a child's age 2-3 years off next to its birth date (OMC and custody age columns)."""
+        def has_age_column(key):
+            row = self.row_of(key)
+            return key[3] == "child" and (row.source == "omc" or (
+                row.source == "custody" and CUSTODY_SHEETS[row.sheet]["age"]))
+
+        def inject(key):
+            row, p = self.row_of(key), self.P[self.seen[key]["pid"]]
+            on = row.events["placement_date" if row.source == "omc" else "intake_date"]
+            years, _ = age_text_years_months(p.dob, on)
+            offs = [x for x in (2, 3, -2, -3) if years + x >= 1]
+            if years < 2 or not offs:
+                return False
+            new = years + self.rng.choice(offs)
+            written = (f"{new} yrs" if self.rng.random() < 0.4 else str(new)) if row.source == "omc" else new
+            self.put(key, "age", written)
+            self.line("age_conflict", key, "age", written, years)
+            return True
+        self.one_record(n, inject, has_age_column)
+
+    def too_many_parents(self):
+        """Label the release rows that name an unrelated adult as a child's parent."""
+        for rk, slots in self.by_row.items():
+            row = self.row_of(next(iter(slots.values())))
+            if row.kind != "extra parent":
+                continue
+            text = f"{row.slots['parent']} recorded as parent of {row.slots['child']}"
+            for key in slots.values():
+                self.line("too_many_parents", key, "relation", text, "unrelated")
+            self.take_row(rk)
+
+    def shared_reg_no(self, n: int):
+        """One record of person X shows the number of an unrelated person Y (plus the messiness ones).
+
+        X's other records show no number at all (and no other defect), so X's records still form one
+        entity on names and birth date; Y is of
+        the other sex, 10+ years apart in age, from another family and shows its own number.
+        """
+        owners = [pid for pid, keys in self.by_person.items() if any(self.reg_ok(k) for k in keys)]
+        # the messiness already writes a parent's number for a child; where the row does not show
+        # that number for the parent too (else it is self_parent), the number is shared across persons
+        existing = []
+        for key, info in self.seen.items():
+            row = info["row"]
+            if (key[3] == "child" and "parent" in row.slots and info["reg_style"] not in ("sci", "sci_lossy")
+                    and info["reg_digits"] == self.P[row.slots["parent"]].reg
+                    and ("reg_no", "other person's number (parent's)") in self.kinds.get(key, ())
+                    and not any(x[0] == "self_parent" and tuple(x[1:5]) == key for x in self.lines)):
+                existing.append(key)
+        for key in existing:
+            self.line("shared_reg_no", key, "reg_no", self.seen[key]["reg"], self.P[self.seen[key]["pid"]].reg)
+            self.used_rows.add(key[:3])
+
+        def inject(key):
+            x = self.P[self.seen[key]["pid"]]
+            others = [k for k in self.by_person[x.pid] if k != key]
+            if not (self.free_row(key[:3]) and self.clean(key) and others
+                    and all(self.seen[k]["reg_digits"] is None and self.defect_fields(k) == {"reg_no"}
+                            for k in others)):
+                return False
+            style = self.seen[key]["reg_style"]
+            ys = [self.P[y] for y in owners if y not in self.used_persons]
+            ys = [y for y in ys if y.fid != x.fid and y.sex != x.sex and abs(years_between(y.dob, x.dob)) >= 10
+                  and fold(y.family) != fold(x.family) and fold(y.given) != fold(x.given)
+                  and not (style in ZERO_LOSING and y.reg.startswith("0"))]
+            if not ys:
+                return False
+            y = self.rng.choice(ys)
+            value = format_reg(y.reg, style)
+            if isinstance(self.seen[key]["reg"], str):
+                value = str(value)
+            self.put(key, "reg", value)
+            self.line("shared_reg_no", key, "reg_no", value, x.reg)
+            self.used_rows.add(key[:3])
+            self.used_persons |= {x.pid, y.pid}
+            return True
+        self.fill([k for k in self.seen if not self.row_of(k).added], n - len(existing), inject)
+
+
+def relation_evidence(seen: dict, pairs: list[tuple]) -> list[str]:
+    """For each (child pid, parent pid): what in the delivery states the relation.
+
+    ``row``: a two-person row names both; ``case``: both have a tracing line under one Case ID;
+    ``named``: a legal-aid intake row of the parent names the child; else ``none``.  The first
+    that applies, in that order.
+    """
+    rows: dict[tuple, dict] = {}
+    for (rel, sheet, r, slot), info in seen.items():
+        rows.setdefault((rel, sheet, r), {})[slot] = info
+    on_row, cases, named = set(), {}, set()
+    for slots in rows.values():
+        info = next(iter(slots.values()))
+        if "child" in slots and "parent" in slots:
+            on_row.add((slots["child"]["pid"], slots["parent"]["pid"]))
+        if info["row"].source == "tracing":
+            cases.setdefault(info["pid"], set()).add(info["row"].extras["case_id"])
+        if info["row"].source == "legal":
+            named |= {(c, info["pid"]) for c in info["row"].extras["named_pids"]}
+    out = []
+    for c, a in pairs:
+        if (c, a) in on_row:
+            out.append("row")
+        elif cases.get(c, set()) & cases.get(a, set()):
+            out.append("case")
+        elif (c, a) in named:
+            out.append("named")
+        else:
+            out.append("none")
+    return out
+
+
 def omc_date(d: dt.date | None, style: str, rng: random.Random):
     """A date as the minors' office writes it: date cell, serial number or m/d/y text."""
     if d is None:
@@ -1523,15 +2030,19 @@ def write_delivery(out_dir, seed: int = SEED, n_families: int = N_FAMILIES,
         if (out / sub).is_dir():
             shutil.rmtree(out / sub)
     out.mkdir(parents=True, exist_ok=True)
-    d = Delivery(out, vocabulary, seed, n_families)
-    d.write_custody()
-    d.write_omc()
-    d.write_tracing()
-    d.write_legal()
-    d.write_transfers()
-    d.write_releases()
+    # a dry render shows where the messiness fell; the injections are then placed on clean cells
+    dry = Delivery(out, vocabulary, seed, n_families, dry=True)
+    dry.render()
+    plan, injected = InjectionPlanner(dry, seed).run()
+    d = Delivery(out, vocabulary, seed, n_families, plan=plan)
+    d.render()
+    if d.w_main.defects != dry.w_main.defects:
+        raise RuntimeError("the injections changed the messiness")
+    records = {(t["source_file"], t["sheet"], t["row"], t["slot"]): t["person_id"] for t in d.truth}
+    if any(records.get(tuple(x[1:5])) != x[5] for x in injected):
+        raise RuntimeError("an injected line names no person-record")
     roster = d.write_roster()
-    d.write_truth(roster)
+    d.write_truth(roster, injected)
     if vocabulary == "alternate":
         d.write_config()
     per_person = Counter(t["person_id"] for t in d.truth)
@@ -1544,7 +2055,8 @@ def write_delivery(out_dir, seed: int = SEED, n_families: int = N_FAMILIES,
         "records": len(d.truth),
         "records_per_file": dict(Counter(t["source_file"] for t in d.truth)),
         "records_per_person": dict(sorted(Counter(per_person.values()).items())),
-        "defects": dict(sorted(Counter(x["kind"] for x in d.w.defects).items())),
+        "defects": dict(sorted(Counter(x["kind"] for x in d.w_main.defects).items())),
+        "injected": {rule: n for rule, n in Counter(x[0] for x in injected).items()},
         "roster": dict(Counter(r["status"] for r in roster)),
     }
 

@@ -161,7 +161,8 @@ def test_regeneration_is_byte_identical(tmp_path):
     generate.write_delivery(a)
     generate.write_delivery(b)
     ha, hb = file_hashes(a), file_hashes(b)
-    assert len(ha) >= 12 and ha == hb
+    assert len(ha) >= 13 and ha == hb
+    assert "truth/injected.csv" in ha and "truth/relations.csv" in ha
     # the committed sample is what the generator writes (xlsx compared member by member,
     # so a different zlib build cannot make this fail)
     for rel in ha:
@@ -351,9 +352,14 @@ def accounting_problems(sheets: dict, ledger: pd.DataFrame, records: pd.DataFram
     return problems
 
 
-def test_every_row_of_the_sample_delivery_is_accounted_for():
+@pytest.fixture(scope="module")
+def demo_run():
+    return run_pipeline(load_config(DEMO_CONFIG))
+
+
+def test_every_row_of_the_sample_delivery_is_accounted_for(demo_run):
     """All rows of every file and sheet (counted with openpyxl / csv) are in the ledger once, records match."""
-    res = run_pipeline(load_config(DEMO_CONFIG))
+    res = demo_run
     sheets = delivery_rows(SAMPLE / "delivery")
     assert len({f for f, _ in sheets}) == 7 and len(sheets) >= 20
     assert accounting_problems(sheets, res.ledger, res.records) == []
@@ -388,3 +394,146 @@ def test_alternate_vocabulary_delivery_is_recovered_with_its_own_config(tmp_path
     assert len(expected & got) / len(expected) >= 0.99
     assert len(got - expected) / len(expected) <= 0.01
     assert accounting_problems(delivery_rows(tmp_path / "delivery"), res.ledger, res.records) == []
+
+
+# ---------------------------------------------------------------------------
+# Labelled injections (truth/injected.csv) and relation evidence
+# ---------------------------------------------------------------------------
+INJECTED_COLUMNS = ["rule", "source_file", "sheet", "row", "slot", "person_id", "field", "written", "true_value"]
+KEY = ["source_file", "sheet", "row", "slot"]
+
+
+def load_truth(name: str) -> pd.DataFrame:
+    return pd.read_csv(SAMPLE / "truth" / name, dtype=str, keep_default_na=False)
+
+
+def test_injected_lines_point_at_person_cells():
+    """Every injected line is a person-record of the truth (same person), each rule has >= 15 lines."""
+    inj = load_truth("injected.csv")
+    assert list(inj.columns) == INJECTED_COLUMNS
+    records = load_truth("records.csv")
+    joined = inj.merge(records, on=KEY, how="left", suffixes=("", "_truth"), validate="many_to_one")
+    assert (joined["person_id_truth"] == joined["person_id"]).all(), joined[joined["person_id_truth"] != joined["person_id"]]
+    assert set(inj["rule"]) == set(generate.RULES)
+    counts = inj["rule"].value_counts()
+    assert (counts >= 15).all(), counts.to_dict()
+    assert not inj.duplicated(["rule"] + KEY).any()
+    # sorted: rule order of the spec, then file, sheet, numeric row, slot
+    order = inj.assign(r=inj["rule"].map(generate.RULES.index), n=inj["row"].astype(int))
+    assert order.equals(order.sort_values(["r", "source_file", "sheet", "n", "slot"], kind="mergesort"))
+
+
+def test_injections_do_not_change_the_messiness(tmp_path):
+    """Rendering with and without the injections gives the same defects (the planner only uses clean cells)."""
+    dry = generate.Delivery(tmp_path, "demo", 5, 60, dry=True)
+    dry.render()
+    plan, lines = generate.InjectionPlanner(dry, 5).run()
+    assert plan and lines
+    again = generate.Delivery(tmp_path, "demo", 5, 60, plan=plan, dry=True)
+    again.render()
+    assert again.w_main.defects == dry.w_main.defects
+    assert list((tmp_path).iterdir()) == []          # dry renders write nothing
+    # and the plan really changes what is written
+    changed = [k for k in plan if k[3] and again.seen[k] != dry.seen[k]]
+    assert changed
+
+
+def years(a: str, b: str) -> float:
+    return (dt.date.fromisoformat(b) - dt.date.fromisoformat(a)).days / 365.25
+
+
+def test_injections_show_in_the_ingested_records(demo_run):
+    """Read by the pipeline, every injected record shows the impossibility its rule names."""
+    cutoff = tomllib.loads(DEMO_CONFIG.read_text(encoding="utf-8"))["rules"]["cutoff_date"]
+    recs = demo_run.records.astype(str).assign(row=lambda r: r["row"].astype(str))
+    persons = load_truth("persons.csv").set_index("person_id")
+    inj = load_truth("injected.csv").merge(recs, on=KEY, how="left", validate="many_to_one", indicator=True)
+    assert (inj["_merge"] == "both").all()
+    inj["true_dob"] = inj["person_id"].map(persons["birth_date"])
+    by_row = recs.set_index(["source_file", "sheet", "row", "slot"])
+
+    def partner(r, slot):
+        return by_row.loc[(r["source_file"], r["sheet"], r["row"], slot)]
+
+    problems = []
+    for r in inj.to_dict("records"):
+        rule, events = r["rule"], [r[f] for f in ("intake_date", "placement_date", "release_date") if r[f]]
+        if rule == "self_parent":
+            ok = r["reg_no"] != "" and partner(r, "child")["reg_no"] == partner(r, "parent")["reg_no"]
+        elif rule == "parent_too_young":
+            c, p = partner(r, "child")["birth_date"], partner(r, "parent")["birth_date"]
+            ok = bool(c and p) and 9 < years(p, c) < 12
+        elif rule == "release_before_intake":
+            ok = bool(r["release_date"] and r["intake_date"]) and r["release_date"] < r["intake_date"]
+        elif rule == "event_after_cutoff":
+            ok = any(e > cutoff for e in events) and r[r["field"]] == r["written"]
+        elif rule == "event_before_birth":
+            ok = r[r["field"]] == r["written"] < r["true_dob"]
+        elif rule == "sex_conflict":
+            ok = r["sex"] != "" and r["sex"] != persons.loc[r["person_id"], "sex"] == r["true_value"]
+        elif rule == "birth_date_conflict":
+            ok = r["birth_date"] == r["written"] and r["birth_date"] not in ("", r["true_dob"])
+        elif rule == "age_conflict":
+            ok = r["birth_date_min"] != "" and not r["birth_date_min"] <= r["true_dob"] <= r["birth_date_max"]
+        elif rule == "too_many_parents":
+            ok = r["slot"] in ("child", "parent") and "recorded as parent of" in r["written"]
+        else:   # shared_reg_no: a valid number that is another person's
+            owner = persons.index[persons["reg_no"] == r["reg_no"]]
+            ok = r["reg_no_status"] == "valid" and len(owner) == 1 and owner[0] != r["person_id"]
+        if not ok:
+            problems.append((rule, r["source_file"], r["sheet"], r["row"], r["slot"]))
+    assert problems == []
+
+
+def test_too_many_parents_attach_unrelated_adults():
+    """The labelled rows name an adult who is not the child's parent, giving the child 3+ parents."""
+    inj = load_truth("injected.csv")
+    records = load_truth("records.csv")
+    true = set(map(tuple, load_truth("relations.csv")[["child_person_id", "parent_person_id"]].values))
+    rows = records.pivot_table(index=["source_file", "sheet", "row"], columns="slot", values="person_id",
+                               aggfunc="first").dropna(subset=["child", "parent"])
+    claimed = rows.groupby("child")["parent"].nunique()
+    extra = inj[inj["rule"] == "too_many_parents"]
+    extra_rows = rows.loc[[tuple(k) for k in extra[["source_file", "sheet", "row"]].drop_duplicates().values]]
+    assert len(extra_rows) >= 15
+    assert not any((c, p) in true for c, p in extra_rows[["child", "parent"]].values)
+    assert (claimed[extra_rows["child"].unique()] >= 3).all()
+    assert (claimed.drop(extra_rows["child"].unique()) <= 1).all()   # nobody else has more than one
+
+
+def test_relation_evidence_matches_the_delivery():
+    """evidence = row / case / named / none, first applicable, as the delivery shows it."""
+    rel = load_truth("relations.csv")
+    assert list(rel.columns) == ["child_person_id", "parent_person_id", "evidence"]
+    assert set(rel["evidence"]) <= {"row", "case", "named", "none"}
+    counts = rel["evidence"].value_counts()
+    assert all(counts.get(e, 0) > 10 for e in ("row", "case", "named", "none")), counts.to_dict()
+    records = load_truth("records.csv")
+    persons = load_truth("persons.csv").set_index("person_id")
+    rows = records.pivot_table(index=["source_file", "sheet", "row"], columns="slot", values="person_id",
+                               aggfunc="first").dropna(subset=["child", "parent"])
+    on_row = set(map(tuple, rows[["child", "parent"]].values))
+    # Case ID per tracing line, read from the CSV itself
+    tracing = read_rows(SAMPLE / "delivery" / "family_tracing_2026.csv", "")
+    case_col = [fold(h) for h in tracing[0]].index("caseid")
+    mine = records[records["source_file"] == "family_tracing_2026.csv"]
+    cases: dict[str, set] = {}
+    for pid, row in zip(mine["person_id"], mine["row"].astype(int)):
+        cases.setdefault(pid, set()).add(tracing[row - 1][case_col])
+    # "Children named" per legal-aid line, read from the workbook
+    named: dict[str, str] = {}
+    legal = records[records["source_file"] == "legal_aid_intake_2026.xlsx"]
+    for sheet in sorted(set(legal["sheet"])):
+        cells = read_rows(SAMPLE / "delivery" / "legal_aid_intake_2026.xlsx", sheet)
+        col = [fold(h) for h in cells[3]].index("childrennamed")
+        for pid, row in zip(legal.loc[legal["sheet"] == sheet, "person_id"],
+                            legal.loc[legal["sheet"] == sheet, "row"].astype(int)):
+            named[pid] = named.get(pid, "") + ", " + str(cells[row - 1][col] or "")
+    for c, a, e in rel.itertuples(index=False):
+        both_cases = bool(cases.get(c, set()) & cases.get(a, set()))
+        first_given = persons.loc[c, "given_name"].split()[0]
+        assert (e == "row") == ((c, a) in on_row), (c, a, e)
+        if e != "row":
+            assert (e == "case") == both_cases, (c, a, e)
+        if e == "named":
+            assert first_given in [x.strip() for x in named.get(a, "").split(",")], (c, a)
