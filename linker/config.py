@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ConfigError
+from .checks import CheckSettings
 from .link import LinkageSettings
 from .normalize import DEFAULT_SEX_CODES, IdScheme, fold_header, fold_text
 from .schema import CANONICAL_FIELDS, EVENT_FIELDS, PERSON_FIELDS
@@ -40,6 +41,7 @@ class SheetRule:
     full_name_order: str | None = None
     header_row: int | None = None               # force the header row (1-based)
     skip: bool = False                          # leave matching sheets out (ledgered)
+    family_column: str | None = None            # folded header: rows sharing its value are one family
     columns: dict[str, dict[str, tuple[str, ...]]] = field(default_factory=dict)
     # columns: slot name (or "" for generic) -> field -> folded header names
 
@@ -64,6 +66,7 @@ class SheetSettings:
     skip: bool
     slot_columns: dict[str, dict[str, tuple[str, ...]]]   # slot -> field -> folded headers
     generic_columns: dict[str, tuple[str, ...]]           # field -> folded headers
+    family_column: str | None = None                      # folded header grouping rows into families
 
 
 @dataclass(frozen=True)
@@ -101,6 +104,7 @@ class LinkConfig:
     min_parent_age_gap: float
     min_header_matches: int
     linkage: LinkageSettings = field(default_factory=LinkageSettings)
+    checks: CheckSettings = field(default_factory=CheckSettings)
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
 
     def settings_for(self, source_file: str, sheet: str) -> SheetSettings:
@@ -112,6 +116,7 @@ class LinkConfig:
         full_name_order = self.full_name_order
         header_row = None
         skip = False
+        family_column = None
         slot_cols = {s: dict(cols) for s, cols in self.slots.items()}
         generic = dict(self.fields)
         decided = False
@@ -126,12 +131,13 @@ class LinkConfig:
             full_name_order = rule.full_name_order or full_name_order
             header_row = rule.header_row or header_row
             skip = skip or rule.skip
+            family_column = rule.family_column or family_column
             for owner, cols in rule.columns.items():
                 target = generic if owner == "" else slot_cols.setdefault(owner, {})
                 for fld, names in cols.items():
                     target[fld] = names          # a sheet's own vocabulary replaces the default
         return SheetSettings(slot, slot_column, slot_values, date_order, sex_codes,
-                             full_name_order, header_row, skip, slot_cols, generic)
+                             full_name_order, header_row, skip, slot_cols, generic, family_column)
 
 
 # ---------------------------------------------------------------------------
@@ -158,14 +164,16 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "relations": None,  # [{child, parent}]
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
-    "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM},
+    "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM, "birth_date_tolerance_days": _INT,
+              "max_parents": _INT},
     "linkage": {"link_at": _NUM, "review_at": _NUM, "override_weight": _NUM, "seed": _INT,
                 "random_pairs": _INT, "latent_classes": _INT, "name_high": _NUM, "name_medium": _NUM,
                 "date_days": _INT, "block_cap": _INT, "name_window": _INT, "guards": _BOOL, "max_iter": _INT},
 }
 _SHEET_KEYS = {"file": _STR, "sheet": _STR, "slot": _STR, "slot_column": _STR,
                "slot_values": _TABLE, "date_order": _STR, "sex_codes": _TABLE,
-               "full_name_order": _STR, "header_row": _INT, "skip": _BOOL, "columns": _TABLE}
+               "full_name_order": _STR, "header_row": _INT, "skip": _BOOL, "columns": _TABLE,
+               "family_column": _STR}
 
 
 def load_config(path: str | Path) -> LinkConfig:
@@ -294,7 +302,8 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
             sex_codes=v.sex_codes(rule.get("sex_codes", {}), f"{where} sex_codes"),
             full_name_order=v.choice(rule["full_name_order"], FULL_NAME_ORDERS,
                                      f"{where} full_name_order") if "full_name_order" in rule else None,
-            header_row=rule.get("header_row"), skip=rule.get("skip", False), columns=columns))
+            header_row=rule.get("header_row"), skip=rule.get("skip", False), columns=columns,
+            family_column=fold_header(rule["family_column"]) if rule.get("family_column") else None))
 
     roster = None
     if "roster" in doc:
@@ -308,6 +317,12 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
     rules = doc.get("rules", {})
     cutoff = v.date(rules["cutoff_date"], "[rules] cutoff_date") if "cutoff_date" in rules else None
     gap = float(rules.get("min_parent_age_gap", 12))
+    try:
+        checks = CheckSettings(cutoff_date=cutoff, min_parent_age_gap=gap,
+                               birth_date_tolerance_days=rules.get("birth_date_tolerance_days", 0),
+                               max_parents=rules.get("max_parents", 2))
+    except ValueError as exc:
+        v.fail("[rules]", str(exc))
 
     try:
         linkage = LinkageSettings(**doc.get("linkage", {}))
@@ -321,7 +336,7 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         fallback_order=fallback, min_year=dates.get("min_year", 1900), as_of=as_of,
         age_reference=age_ref, sex_codes=sex_codes, full_name_order=full_order, slots=slots,
         fields=fields, relations=tuple(relations), sheets=tuple(sheets), roster=roster,
-        cutoff_date=cutoff, min_parent_age_gap=gap,
+        cutoff_date=cutoff, min_parent_age_gap=gap, checks=checks,
         min_header_matches=delivery.get("min_header_matches", 2), raw=doc)
 
 

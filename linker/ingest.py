@@ -24,7 +24,7 @@ import pandas as pd
 from .config import LinkConfig, SheetSettings
 from .io import FileData, SheetData
 from .normalize import fold_header, fold_text
-from .schema import (EVENT_FIELDS, OUTCOME_EMPTY_SHEET, OUTCOME_HEADER, OUTCOME_RECORD,
+from .schema import (CLAIM_COLUMNS, EVENT_FIELDS, OUTCOME_EMPTY_SHEET, OUTCOME_HEADER, OUTCOME_RECORD,
                      OUTCOME_SKIPPED, PERSON_FIELDS, CANONICAL_FIELDS)
 
 HEADER_SCAN_ROWS = 30
@@ -319,7 +319,7 @@ def ingest_sheet(cfg: LinkConfig, source_file: str, sheet: SheetData) -> SheetRe
             made[slot] = rec["record_id"]
         for child, parent in cfg.relations:
             if child in made and parent in made:
-                claims.append((made[child], made[parent], source_file, sheet.name, rownum))
+                claims.append((made[child], made[parent], source_file, sheet.name, rownum, "row", rownum))
         led(rownum, OUTCOME_RECORD, "persons: " + ", ".join(s for s in slots_here if s in made),
             len(made))
 
@@ -329,8 +329,7 @@ def ingest_sheet(cfg: LinkConfig, source_file: str, sheet: SheetData) -> SheetRe
     records["date_order"] = settings.date_order
     records["full_name_order"] = settings.full_name_order
     records["sex_codes"] = json.dumps(settings.sex_codes, sort_keys=True)
-    claims_df = pd.DataFrame(claims, columns=["child_record_id", "parent_record_id",
-                                              "source_file", "sheet", "row"])
+    claims_df = pd.DataFrame(claims, columns=list(CLAIM_COLUMNS))
     return SheetResult(records, _ledger_frame(ledger), columns, claims_df, warnings)
 
 
@@ -352,4 +351,4 @@ def _empty_result() -> SheetResult:
         _ledger_frame([]),
         pd.DataFrame(columns=["source_file", "sheet", "header_row", "column", "header",
                               "mapped_to", "note"]),
-        pd.DataFrame(columns=["child_record_id", "parent_record_id", "source_file", "sheet", "row"]))
+        pd.DataFrame(columns=list(CLAIM_COLUMNS)))

@@ -294,7 +294,7 @@ def entities_table(records: pd.DataFrame) -> pd.DataFrame:
         best = _best_values(rec, col)
         out = out.merge(best, on="entity_id", how="left")
         out[col] = out[col].fillna("")
-        out[f"{col}_count"] = out[f"{col}_count"].fillna(0).astype(int)
+        out[f"{col}_count"] = pd.to_numeric(out[f"{col}_count"], errors="coerce").fillna(0).astype(int)
         out[f"{col}_seen"] = out[f"{col}_seen"].fillna("")
     first = rec.drop_duplicates("entity_id")[["entity_id", "record_id", "source_file", "sheet", "row", "slot"]]
     first = first.rename(columns={c: f"first_{c}" for c in first.columns if c != "entity_id"})

@@ -7,6 +7,7 @@
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from dataclasses import dataclass, field
@@ -22,9 +23,12 @@ from .ingest import ingest_file
 from .io import file_facts, list_delivery, read_file, write_csv, write_json
 from .evaluate import evaluate_entities, truth_labels
 from .model import FellegiSunter
+from .checks import rule_table, run_checks
+from .queries import query_sheets, write_queries
+from .relations import family_claims, family_values, relations_table
 from .link import blocking_report, entities_table, entity_ids, link_records, pairs_table
 from .records import normalize_records
-from .schema import FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
+from .schema import CLAIM_COLUMNS, FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
 
 Progress = Callable[[str], None]
 
@@ -51,6 +55,7 @@ class RunResult:
     warnings: list[str] = field(default_factory=list)
     extra: dict = field(default_factory=dict)   # frames added by later stages (pairs, entities...)
     model: object = None                         # the fitted FellegiSunter model
+    books: dict = field(default_factory=dict)    # workbooks: file name -> {sheet title: frame}
 
 
 def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
@@ -105,7 +110,8 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     t0 = time.perf_counter()
     raw, ledger, claims, files, columns, warnings = ingest_delivery(cfg, progress, skip_unreadable)
     timings["ingest_s"] = round(time.perf_counter() - t0, 3)
-    progress(f"read {len(files)} files, {len(ledger)} rows, {len(raw)} person-records")
+    n_rows = int(pd.to_numeric(ledger["row"], errors="coerce").notna().sum())
+    progress(f"read {len(files)} files, {n_rows} rows, {len(raw)} person-records")
     t1 = time.perf_counter()
     records = normalize_records(raw, cfg)
     timings["normalize_s"] = round(time.perf_counter() - t1, 3)
@@ -121,7 +127,15 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     timings["link_s"] = round(time.perf_counter() - t2, 3)
     progress(f"linked: {linked.info['entities']} entities, {linked.info['pairs_for_review']} pairs for review")
     warnings = list(warnings) + [f"model: {w}" for w in getattr(linked.model, "warnings_", [])]
-    extra = {"pairs.csv": pairs, "entities.csv": entities, "blocking.csv": linked.blocking}
+    claims = all_claims(cfg, records, claims)
+    relations = relations_table(records, claims)
+    t3 = time.perf_counter()
+    findings = run_checks(records, claims, relations, cfg.checks)
+    timings["checks_s"] = round(time.perf_counter() - t3, 3)
+    progress(f"checked: {len(findings)} finding lines")
+    extra = {"pairs.csv": pairs, "entities.csv": entities, "relations.csv": relations,
+             "findings.csv": findings, "blocking.csv": linked.blocking}
+    books = {"queries.xlsx": query_sheets(findings, records, rule_table())}
     if truth is not None:
         labels, _ = truth_labels(records, truth)
         # records the truth does not cover count as singletons for pair completeness
@@ -139,6 +153,8 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
             "input_rows": int(pd.to_numeric(ledger["row"], errors="coerce").notna().sum()),
             "records": int(len(records)),
             "relation_claims": int(len(claims)),
+            "relations": int(len(relations)),
+            "findings": {k: int(v) for k, v in findings["rule"].value_counts().sort_index().items()},
             "ledger_outcomes": {k: int(v) for k, v in
                                 ledger["outcome"].value_counts().sort_index().items()},
         },
@@ -146,8 +162,25 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     }
     info["linkage"] = linked.info
     return RunResult(records, ledger, claims, files, columns, info, warnings,
-                     extra=extra,
+                     extra=extra, books=books,
                      model=linked.model if fitted else None)
+
+
+def all_claims(cfg: LinkConfig, records: pd.DataFrame, row_claims: pd.DataFrame) -> pd.DataFrame:
+    """Row claims plus the family-column claims of sheets whose rule names a ``family_column``."""
+    sheets = records[["source_file", "sheet"]].astype(str).drop_duplicates()
+    columns = {}
+    for source_file, sheet in sheets.itertuples(index=False):
+        col = cfg.settings_for(source_file, sheet).family_column
+        if col:
+            columns[(source_file, sheet)] = col
+    parts = [row_claims.reindex(columns=list(CLAIM_COLUMNS))]
+    if columns:
+        family = family_values(records, columns)
+        for child, parent in cfg.relations:
+            parts.append(family_claims(records, family, (child,), (parent,)))
+    out = pd.concat(parts, ignore_index=True)
+    return out.drop_duplicates(["child_record_id", "parent_record_id"]).reset_index(drop=True)
 
 
 def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
@@ -161,12 +194,16 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     for name, frame in tables.items():
         write_csv(frame, out / name)
         written.append(out / name)
+    for name, sheets in result.books.items():
+        write_queries(sheets, out / name)
+        written.append(out / name)
     info = dict(result.info)
     info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     info["warnings"] = result.warnings
     if result.model is not None:
         tmp = out / "model.json.tmp"
         result.model.to_json(tmp)
+        os.chmod(tmp, 0o600)                     # like the other outputs: owner only
         tmp.replace(out / "model.json")
         written.append(out / "model.json")
     write_json(info, out / "run.json")

@@ -91,8 +91,22 @@ OUTCOME_SKIPPED = "skipped"      # title/notes/blank/repeated header/total row, 
 OUTCOME_EMPTY_SHEET = "empty sheet"
 OUTCOME_FILE_SKIPPED = "file skipped"
 
-# Relation claims lifted from rows naming several persons.
-CLAIM_COLUMNS = ("child_record_id", "parent_record_id", "source_file", "sheet", "row")
+# Relation claims: from rows naming several persons (basis "row"), or from rows of one sheet
+# sharing a family column's value (basis "family <value>"; ``row`` is the child's row).
+CLAIM_COLUMNS = ("child_record_id", "parent_record_id", "source_file", "sheet", "row", "basis", "parent_row")
 
 # Columns of files.csv.
 FILE_COLUMNS = ("source_file", "kind", "size_bytes", "sha256", "modified", "sheets", "encoding", "status")
+
+# Columns of relations.csv: one line per (child entity, parent entity) pair that some row claims.
+RELATION_COLUMNS = (
+    "child_entity_id", "parent_entity_id",
+    "sources",            # independent sources: distinct source files with a claim
+    "claims",             # rows with a claim
+    "first_seen", "last_seen",   # earliest / latest event date on the claiming rows (ISO or "")
+    "evidence",           # the claiming rows: "source_file | sheet | row", "; " separated
+)
+
+# Columns of findings.csv: one line per row involved in a finding.
+FINDING_COLUMNS = ("rule", "severity", "entity_id", "record_id", *PROVENANCE, "detail")
+SEVERITIES = ("error", "warning")
