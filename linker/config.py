@@ -105,6 +105,7 @@ class LinkConfig:
     min_header_matches: int
     linkage: LinkageSettings = field(default_factory=LinkageSettings)
     checks: CheckSettings = field(default_factory=CheckSettings)
+    queries_by: str = "file"                    # one query sheet per source "file" or per top "folder"
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
 
     def settings_for(self, source_file: str, sheet: str) -> SheetSettings:
@@ -164,6 +165,7 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "relations": None,  # [{child, parent}]
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
+    "queries": {"group_by": _STR},
     "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM, "birth_date_tolerance_days": _INT,
               "max_parents": _INT},
     "linkage": {"link_at": _NUM, "review_at": _NUM, "override_weight": _NUM, "seed": _INT,
@@ -324,6 +326,8 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
     except ValueError as exc:
         v.fail("[rules]", str(exc))
 
+    queries_by = v.choice(doc.get("queries", {}).get("group_by", "file"), ("file", "folder"),
+                          "[queries] group_by")
     try:
         linkage = LinkageSettings(**doc.get("linkage", {}))
     except ValueError as exc:
@@ -336,7 +340,7 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         fallback_order=fallback, min_year=dates.get("min_year", 1900), as_of=as_of,
         age_reference=age_ref, sex_codes=sex_codes, full_name_order=full_order, slots=slots,
         fields=fields, relations=tuple(relations), sheets=tuple(sheets), roster=roster,
-        cutoff_date=cutoff, min_parent_age_gap=gap, checks=checks,
+        cutoff_date=cutoff, min_parent_age_gap=gap, checks=checks, queries_by=queries_by,
         min_header_matches=delivery.get("min_header_matches", 2), raw=doc)
 
 

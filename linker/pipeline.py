@@ -135,7 +135,7 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     progress(f"checked: {len(findings)} finding lines")
     extra = {"pairs.csv": pairs, "entities.csv": entities, "relations.csv": relations,
              "findings.csv": findings, "blocking.csv": linked.blocking}
-    books = {"queries.xlsx": query_sheets(findings, records, rule_table())}
+    books = {"queries.xlsx": query_sheets(findings, records, rule_table(), group_by=cfg.queries_by)}
     if truth is not None:
         labels, _ = truth_labels(records, truth)
         # records the truth does not cover count as singletons for pair completeness

@@ -104,3 +104,29 @@ def test_evaluate_rejects_a_truth_file_without_keys(run_dir, tmp_path, capsys):
 def test_explain_without_a_run_names_the_folder(tmp_path, capsys):
     assert main(["explain", "A", "B", "--out", str(tmp_path)]) == 3
     assert "records.csv" in capsys.readouterr().err
+
+
+def test_a_second_run_writes_byte_identical_outputs(run_dir, tmp_path):
+    """Same inputs and config: every output but run.json (timings, finish time) is byte for byte the same."""
+    again = tmp_path / "again"
+    assert main(["run", str(ROOT / "configs" / "sample.toml"), "--out", str(again), "--quiet",
+                 "--truth", str(TRUTH)]) == 0
+    names = sorted(p.name for p in run_dir.iterdir() if p.name != "run.json")
+    assert {"records.csv", "relations.csv", "findings.csv", "queries.xlsx", "model.json"} <= set(names)
+    for name in names:
+        assert (run_dir / name).read_bytes() == (again / name).read_bytes(), name
+
+
+def test_query_workbook_has_a_sheet_per_source_file_with_the_findings(run_dir):
+    import openpyxl
+
+    findings = pd.read_csv(run_dir / "findings.csv", dtype=str, keep_default_na=False)
+    book = openpyxl.load_workbook(run_dir / "queries.xlsx", read_only=True)
+    index = list(book["index"].iter_rows(values_only=True))
+    header = index[0]
+    by_file = {r[header.index("source file")]: r for r in index[1:]}
+    assert set(by_file) == set(findings["source_file"])
+    per_file = findings.groupby("source_file").size()
+    for source, row in by_file.items():
+        assert row[header.index("queries")] == per_file[source]
+    assert "not determinations" in " ".join(str(c[0]) for c in book["read me"].iter_rows(values_only=True))

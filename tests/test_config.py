@@ -34,6 +34,9 @@ def test_headers_are_folded(project):
     ("\n[[sheets]]\nfile = \"a\"\ndate_order = \"ddmm\"\n", "[[sheets]] #1 date_order"),
     ("\n[sex]\ncodes = { q = \"Q\" }\n", "[sex] codes q"),
     ("\n[[sheets]]\nfile = \"a\"\ncolumns.child.shoe_size = [\"shoe\"]\n", "columns.child shoe_size"),
+    ("\n[queries]\ngroup_by = \"agency\"\n", "[queries] group_by"),
+    ("\n[rules]\nmax_parents = 0\n", "[rules]"),
+    ("\n[[sheets]]\nfile = \"a\"\nfamily_column = 3\n", "[[sheets]] #1 family_column"),
 ])
 def test_unknown_keys_and_values_name_file_and_key(project, extra, key):
     """An unknown section, key, slot, value or field is an error naming the file and the key."""
