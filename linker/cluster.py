@@ -98,7 +98,8 @@ def _split_component(members: np.ndarray, edges: pd.DataFrame, ids: np.ndarray,
         cap = _capacity(w) + (_FIRM if w >= overwhelming else 0.0)
         graph.add_edge(int(a), int(b), capacity=cap)
     for a, b in must:
-        graph.add_edge(int(a), int(b))                 # no capacity: cannot be cut
+        graph.add_edge(int(a), int(b))
+        graph[int(a)][int(b)].pop("capacity", None)    # no capacity: cannot be cut
     waived: set = set()                                # reviewer pairs that cannot be cut
     waived_ids: set = set()                            # identifier pairs held by overwhelming links
     unresolved: list[tuple[int, int]] = []

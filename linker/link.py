@@ -126,9 +126,55 @@ def _quiet(message: str) -> None:
     pass
 
 
+REVIEW_DECISIONS = ("same", "different", "unsure")
+
+
+def decision_positions(records: pd.DataFrame, decisions: pd.DataFrame | None) -> pd.DataFrame:
+    """Reviewer decisions attached to record positions by content fingerprint.
+
+    ``decisions`` holds ``fp_a``, ``fp_b``, ``decision`` (same / different /
+    unsure) and ``pair_id``.  Every record carrying ``fp_a`` is paired with every
+    record carrying ``fp_b``.  Returns ``left``, ``right`` (left < right),
+    ``decision`` and ``pair_id``; decisions whose fingerprints are not both
+    among the records attach to nothing (see :func:`unattached_decisions`).
+    """
+    cols = ["left", "right", "decision", "pair_id"]
+    if decisions is None or len(decisions) == 0:
+        return pd.DataFrame({c: pd.Series(dtype=np.int64 if c in ("left", "right") else object) for c in cols})
+    from .fingerprint import record_fingerprints
+    fp = pd.DataFrame({"fp": record_fingerprints(records).to_numpy(), "pos": np.arange(len(records))})
+    d = decisions[["fp_a", "fp_b", "decision", "pair_id"]]
+    m = d.merge(fp.rename(columns={"fp": "fp_a", "pos": "a"}), on="fp_a").merge(
+        fp.rename(columns={"fp": "fp_b", "pos": "b"}), on="fp_b")
+    m = m[m["a"] != m["b"]]
+    out = pd.DataFrame({"left": np.minimum(m["a"], m["b"]).astype(np.int64),
+                        "right": np.maximum(m["a"], m["b"]).astype(np.int64),
+                        "decision": m["decision"].to_numpy(), "pair_id": m["pair_id"].to_numpy()})
+    return out.drop_duplicates(["left", "right"]).sort_values(["left", "right"]).reset_index(drop=True)
+
+
+def unattached_decisions(records: pd.DataFrame, decisions: pd.DataFrame | None) -> pd.DataFrame:
+    """Decisions whose two records are not both in this run: a record's compared values changed,
+    or it is gone.  They are listed for another look, never applied and never dropped."""
+    if decisions is None or len(decisions) == 0:
+        return pd.DataFrame(columns=["pair_id", "fp_a", "fp_b", "decision", "missing"])
+    from .fingerprint import record_fingerprints
+    have = set(record_fingerprints(records))
+    a_ok, b_ok = decisions["fp_a"].isin(have), decisions["fp_b"].isin(have)
+    out = decisions[~(a_ok & b_ok)].copy()
+    out["missing"] = np.where(~a_ok[~(a_ok & b_ok)] & ~b_ok[~(a_ok & b_ok)], "both records",
+                              np.where(~a_ok[~(a_ok & b_ok)], "record A", "record B"))
+    return out.reset_index(drop=True)
+
+
 def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSettings(),
-                 progress: Callable[[str], None] = _quiet) -> LinkResult:
-    """Block, compare, fit, score, decide and cluster ``records`` (positions are row order)."""
+                 progress: Callable[[str], None] = _quiet, decisions: pd.DataFrame | None = None) -> LinkResult:
+    """Block, compare, fit, score, decide and cluster ``records`` (positions are row order).
+
+    ``decisions`` (reviewer decisions by fingerprint, see :func:`decision_positions`)
+    overrule the model: "same" pairs are linked and must stay together, "different"
+    pairs are never linked and are split apart (minimum cut), "unsure" pairs stay in review.
+    """
     records = records.reset_index(drop=True)
     fields, rules = person_fields(settings), person_rules(settings)
     t = {}
@@ -154,11 +200,24 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
     scores["rules"] = pairs["rules"].to_numpy()
     scores["decision"] = np.where(p >= settings.link_at, "link",
                                   np.where(p >= settings.review_at, "review", "non-link"))
+    dec = decision_positions(records, decisions)
+    scores["reviewed"] = ""
+    if len(dec):
+        hit = scores[["left", "right"]].reset_index().merge(dec, on=["left", "right"])
+        scores.loc[hit["index"].to_numpy(), "reviewed"] = hit["decision"].to_numpy()
+        r = scores["reviewed"].to_numpy()
+        scores.loc[r == "same", "decision"] = "link"
+        scores.loc[r == "different", "decision"] = "non-link"
+        scores.loc[r == "unsure", "decision"] = "review"
+    must = dec.loc[dec["decision"] == "same", ["left", "right"]].to_numpy()
+    cannot = dec.loc[dec["decision"] == "different", ["left", "right"]].to_numpy()
     linked = scores["decision"].to_numpy() == "link"
     t0 = time.perf_counter()
     left, right = scores["left"].to_numpy(), scores["right"].to_numpy()
+    unresolved: list = []
     labels = constrained_entities(len(records), left[linked], right[linked], scores["weight"].to_numpy()[linked],
-                                  trusted_ids(records), overwhelming=settings.override_weight)
+                                  trusted_ids(records), overwhelming=settings.override_weight,
+                                  cannot=cannot, must=must, report=unresolved)
     held = linked & (labels[left] != labels[right])
     scores.loc[held, "decision"] = "review"     # held apart by the identifier constraint: a reviewer decides
     t["cluster_s"] = time.perf_counter() - t0
@@ -175,6 +234,8 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
         "match_prior": float(model.prior_),
         "relatives_share": float(model.relative_share_),
         "capped_blocks": int(len(capped)),
+        "decisions_applied": int(dec["pair_id"].nunique()) if len(dec) else 0,
+        "decisions_unresolved": [[int(a), int(b)] for a, b in unresolved],
         "timings": {k: round(v, 3) for k, v in t.items()},
     }
     return LinkResult(scores, levels, labels, model, fields, rules, report, capped, info)
@@ -252,6 +313,7 @@ def pairs_table(records: pd.DataFrame, result: LinkResult, include_non_links: bo
     out["prior_weight"] = round(prior, 4)
     out["guard_weight"] = adj.round(4)
     out["rules"] = _rule_names(s["rules"].to_numpy()[keep].astype(np.int64), result.rules)
+    out["reviewed"] = s["reviewed"].to_numpy()[keep] if "reviewed" in s.columns else ""
     out = out.sort_values(["probability", "record_a", "record_b"], ascending=[False, True, True],
                           kind="mergesort")
     return out.reset_index(drop=True)

@@ -142,3 +142,12 @@ def test_split_is_deterministic_and_keeps_unconflicted_components_whole():
     for _ in range(3):
         assert (constrained_entities(8, left, right, weight, ids) == first).all()
     assert _groups(first) == [[0, 1], [2, 3], [4], [5, 6, 7]]
+
+
+def test_must_link_over_a_proposed_link_holds_against_an_identifier_conflict():
+    """A reviewer's 'same person' on a pair the model also linked makes that link uncuttable,
+    even though the two records show registration numbers far apart."""
+    left, right, weight = [0, 1], [1, 2], [3.0, 12.0]
+    ids = ["11111118", "99999990", ""]
+    assert _groups(constrained_entities(3, left, right, weight, ids)) == [[0], [1, 2]]
+    assert _groups(constrained_entities(3, left, right, weight, ids, must=[(0, 1)])) == [[0, 1, 2]]
