@@ -106,6 +106,8 @@ class LinkConfig:
     linkage: LinkageSettings = field(default_factory=LinkageSettings)
     checks: CheckSettings = field(default_factory=CheckSettings)
     queries_by: str = "file"                    # one query sheet per source "file" or per top "folder"
+    store: Path | None = None                   # the project store (SQLite): decisions and entity IDs
+    corrections: Path | None = None             # corrections file applied at normalization
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
 
     def settings_for(self, source_file: str, sheet: str) -> SheetSettings:
@@ -166,6 +168,8 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
     "queries": {"group_by": _STR},
+    "store": {"path": _STR},
+    "corrections": {"file": _STR},
     "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM, "birth_date_tolerance_days": _INT,
               "max_parents": _INT},
     "linkage": {"link_at": _NUM, "review_at": _NUM, "override_weight": _NUM, "seed": _INT,
@@ -341,6 +345,8 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         age_reference=age_ref, sex_codes=sex_codes, full_name_order=full_order, slots=slots,
         fields=fields, relations=tuple(relations), sheets=tuple(sheets), roster=roster,
         cutoff_date=cutoff, min_parent_age_gap=gap, checks=checks, queries_by=queries_by,
+        store=(base / doc["store"]["path"]).resolve() if "path" in doc.get("store", {}) else None,
+        corrections=(base / doc["corrections"]["file"]).resolve() if "file" in doc.get("corrections", {}) else None,
         min_header_matches=delivery.get("min_header_matches", 2), raw=doc)
 
 

@@ -241,6 +241,37 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
     return LinkResult(scores, levels, labels, model, fields, rules, report, capped, info)
 
 
+def labelled_fit(result: LinkResult) -> pd.DataFrame:
+    """How reviewer-labelled pairs compare with the fitted model, per field and level.
+
+    For the pairs reviewed "same person", the share at each level is an
+    estimate of m from labels; for "different people", of the share among
+    close non-matches.  Set beside the EM estimate, a large gap says the
+    unsupervised fit misjudges that level.  Columns: field, level, m_fitted,
+    m_labelled, same_pairs, share_different, different_pairs.
+    """
+    cols = ["field", "level", "m_fitted", "m_labelled", "same_pairs", "share_different", "different_pairs"]
+    s = result.scores
+    if "reviewed" not in s.columns or not hasattr(result.model, "m_"):
+        return pd.DataFrame(columns=cols)
+    rev = s["reviewed"].to_numpy()
+    same, diff = rev == "same", rev == "different"
+    if not (same.any() or diff.any()):
+        return pd.DataFrame(columns=cols)
+    rows = []
+    for j, f in enumerate(result.fields):
+        lv = result.levels[:, j].astype(np.int64)
+        for k, name in enumerate(f.levels):
+            if name == "missing":
+                continue
+            ns, nd = int(same.sum()), int(diff.sum())
+            rows.append({"field": f.name, "level": name, "m_fitted": float(result.model.m_[f.name][k]),
+                         "m_labelled": float((lv[same] == k).mean()) if ns else np.nan, "same_pairs": ns,
+                         "share_different": float((lv[diff] == k).mean()) if nd else np.nan,
+                         "different_pairs": nd})
+    return pd.DataFrame(rows, columns=cols)
+
+
 def trusted_ids(records: pd.DataFrame) -> np.ndarray:
     """Per record the registration number clustering may rely on: valid, and not shown for two persons of a row."""
     reg = records["reg_no"].astype(object).where(records["reg_no"].notna(), "").astype(str).to_numpy(dtype=object)

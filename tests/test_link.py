@@ -115,7 +115,7 @@ def test_bad_linkage_settings_name_the_key(linkage, key):
 def test_reviewer_decisions_by_fingerprint_overrule_the_model(demo):
     """Decide every review pair of the demo from its truth: all decisions are honoured and F1 rises."""
     from linker.fingerprint import pair_keys, record_fingerprints
-    from linker.link import decision_positions, link_records, unattached_decisions
+    from linker.link import decision_positions, labelled_fit, link_records, unattached_decisions
 
     res, truth = demo
     records = res.records.drop(columns=["entity_id"])
@@ -135,6 +135,10 @@ def test_reviewer_decisions_by_fingerprint_overrule_the_model(demo):
     print(f"pairwise F1 before review {before:.4f}, after {after:.4f}")
     assert after > before
     assert len(decision_positions(records, decisions)) >= len(decisions)
+    fit = labelled_fit(again).set_index(["field", "level"])
+    assert fit["same_pairs"].iloc[0] == int(same.sum()) and fit["different_pairs"].iloc[0] == int((~same).sum())
+    # shares over one field's non-missing levels sum to at most 1
+    assert (fit.groupby(level="field")["m_labelled"].sum() <= 1 + 1e-9).all()
     # a decision about a record that is gone is listed, not applied
     gone = decisions.iloc[:1].assign(fp_a="Fnot-in-this-run")
     listed = unattached_decisions(records, pd.concat([decisions, gone], ignore_index=True))
