@@ -136,7 +136,8 @@ def test_reviewer_decisions_by_fingerprint_overrule_the_model(demo):
     assert after > before
     assert len(decision_positions(records, decisions)) >= len(decisions)
     fit = labelled_fit(again).set_index(["field", "level"])
-    assert fit["same_pairs"].iloc[0] == int(same.sum()) and fit["different_pairs"].iloc[0] == int((~same).sum())
+    # records sharing a fingerprint carry the decision to every candidate pair of that content
+    assert fit["same_pairs"].iloc[0] >= int(same.sum()) and fit["different_pairs"].iloc[0] >= int((~same).sum())
     # shares over one field's non-missing levels sum to at most 1
     assert (fit.groupby(level="field")["m_labelled"].sum() <= 1 + 1e-9).all()
     # a decision about a record that is gone is listed, not applied
