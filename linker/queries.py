@@ -128,8 +128,8 @@ def query_sheets(findings: pd.DataFrame, records: pd.DataFrame, rules: pd.DataFr
 def query_lines(findings: pd.DataFrame, records: pd.DataFrame, rules: pd.DataFrame | None,
                 group_by: str) -> pd.DataFrame:
     """All query lines, numbered, with their group key (column ``group``)."""
-    f = _text_frame(findings, FINDING_COLUMNS)
-    raw = _text_frame(records, ("record_id", *RAW_COLUMNS)).drop_duplicates("record_id")
+    f = text_frame(findings, FINDING_COLUMNS)
+    raw = text_frame(records, ("record_id", *RAW_COLUMNS)).drop_duplicates("record_id")
     f = f.merge(raw, on="record_id", how="left", validate="many_to_one")
     f[list(RAW_COLUMNS)] = f[list(RAW_COLUMNS)].fillna("")
     f["group"] = group_keys(f["source_file"], group_by)
@@ -152,7 +152,7 @@ def query_lines(findings: pd.DataFrame, records: pd.DataFrame, rules: pd.DataFra
         "what was checked": f["rule"].map(explanation),
         "file": f["source_file"],
         "sheet": f["sheet"],
-        "row": _row_values(f["row"], pd.to_numeric(f["row"], errors="coerce")),
+        "row": row_values(f["row"], pd.to_numeric(f["row"], errors="coerce")),
         "person on row": f["slot"],
         **{label: f[col] for col, label in RAW_COLUMNS.items()},
         "detail": f["detail"],
@@ -277,7 +277,7 @@ def write_queries(sheets: dict[str, pd.DataFrame], path: str | Path,
     book.remove(book.active)
     for title, frame in sheets.items():
         sheet = book.create_sheet(title)
-        _fill_sheet(sheet, frame, readme=(title == README_TITLE))
+        fill_sheet(sheet, frame, readme=(title == README_TITLE))
     stamp = stamp.replace(tzinfo=None, microsecond=0)
     book.properties.created = stamp
     book.properties.modified = stamp
@@ -326,7 +326,7 @@ def cell_text(value):
     return value
 
 
-def _fill_sheet(sheet, frame: pd.DataFrame, readme: bool) -> None:
+def fill_sheet(sheet, frame: pd.DataFrame, readme: bool) -> None:
     from openpyxl.styles import Alignment, Font, PatternFill
     from openpyxl.utils import get_column_letter
 
@@ -338,23 +338,23 @@ def _fill_sheet(sheet, frame: pd.DataFrame, readme: bool) -> None:
     values = [[cell_text(v) for v in row] for row in frame.itertuples(index=False, name=None)]
     for c, name in enumerate(columns, start=1):
         answer = name in ANSWER_COLUMNS
-        head = _put(sheet, 1, c, cell_text(name))
+        head = put_cell(sheet, 1, c, cell_text(name))
         head.font = bold
         head.fill = answer_fill if answer else header_fill
         for r, row in enumerate(values, start=2):
-            cell = _put(sheet, r, c, row[c - 1])
+            cell = put_cell(sheet, r, c, row[c - 1])
             if answer:
                 cell.fill = answer_fill
             if readme:
                 cell.alignment = wrap
-        width = README_WIDTH if readme else _width([name] + [row[c - 1] for row in values])
+        width = README_WIDTH if readme else column_width([name] + [row[c - 1] for row in values])
         sheet.column_dimensions[get_column_letter(c)].width = width
     sheet.freeze_panes = "A2" if readme or not columns else "B2"
     if not readme and columns and values:
         sheet.auto_filter.ref = f"A1:{get_column_letter(len(columns))}{len(values) + 1}"
 
 
-def _put(sheet, row: int, column: int, value):
+def put_cell(sheet, row: int, column: int, value):
     cell = sheet.cell(row=row, column=column)
     cell.value = value
     if isinstance(value, str):
@@ -362,7 +362,7 @@ def _put(sheet, row: int, column: int, value):
     return cell
 
 
-def _width(values: list) -> float:
+def column_width(values: list) -> float:
     longest = max((len(str(v)) for v in values), default=0)
     return float(min(MAX_WIDTH, max(MIN_WIDTH, longest + 2)))
 
@@ -370,7 +370,7 @@ def _width(values: list) -> float:
 # ---------------------------------------------------------------------------
 # Helpers
 # ---------------------------------------------------------------------------
-def _text_frame(frame: pd.DataFrame | None, columns) -> pd.DataFrame:
+def text_frame(frame: pd.DataFrame | None, columns) -> pd.DataFrame:
     """``frame`` with exactly ``columns``, all text, missing values as ""."""
     columns = list(columns)
     if frame is None:
@@ -382,7 +382,7 @@ def _text_frame(frame: pd.DataFrame | None, columns) -> pd.DataFrame:
 
 def _rule_facts(rules: pd.DataFrame | None, used: pd.Series) -> tuple[dict, dict]:
     """Sort position and plain-words explanation of every rule (table order, then by name)."""
-    table = _text_frame(rules, ("rule", "severity", "explanation")).drop_duplicates("rule")
+    table = text_frame(rules, ("rule", "severity", "explanation")).drop_duplicates("rule")
     known = table["rule"].tolist()
     extra = sorted(set(used) - set(known))
     order = {r: i for i, r in enumerate(known + extra)}
@@ -393,7 +393,7 @@ def _rule_facts(rules: pd.DataFrame | None, used: pd.Series) -> tuple[dict, dict
     return order, explanation
 
 
-def _row_values(row: pd.Series, number: pd.Series) -> list:
+def row_values(row: pd.Series, number: pd.Series) -> list:
     """Row numbers as integers where they are whole numbers, else the text as given."""
     whole = number.notna() & (number == number.round())
     return [int(n) if w else r for r, n, w in zip(row, number, whole)]
