@@ -16,7 +16,10 @@ from .config import load_config
 from .errors import InputError, LinkerError
 from .evaluate import evaluate_entities, read_truth
 from .link import explain_pair
-from .pipeline import _quiet, read_model, read_records, run_pipeline, stderr_progress, write_outputs
+from .pipeline import (_quiet, import_decisions, read_model, read_records, remember_run, run_pipeline,
+                       stderr_progress, store_inputs, write_outputs)
+from .review import read_review
+from .store import open_store
 
 DESCRIPTION = """\
 linker links person-records across agency spreadsheet productions: it reads every
@@ -44,6 +47,25 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--truth", metavar="FILE",
                      help="a record -> person_id table (by record_id, or by source_file, sheet, row, "
                      "slot); adds pair completeness per rule to blocking.csv and writes evaluation.csv")
+
+    run.add_argument("--store", metavar="FILE",
+                     help="the project store (SQLite) keeping reviewer decisions and entity IDs across "
+                     "runs; default: [store] path of the config; without either, nothing is remembered")
+
+    review = sub.add_parser("review", help="bring reviewer decisions into the project store",
+                            description="Commands on the review workbook (review.xlsx) a run writes.")
+    review_sub = review.add_subparsers(dest="review_command", metavar="ACTION")
+    imp = review_sub.add_parser("import", help="store the decisions of a filled review workbook",
+                                description="Read the decisions of a filled review.xlsx and store them "
+                                "(with reviewer, time and note) in the project store, all or nothing. "
+                                "The next run honours them: same person joins the two records, "
+                                "different people keeps them apart.")
+    imp.add_argument("workbook", metavar="WORKBOOK", help="the filled review.xlsx")
+    imp.add_argument("--config", required=True, metavar="CONFIG", help="the project's TOML config")
+    imp.add_argument("--reviewer", required=True, metavar="NAME", help="who made the decisions")
+    imp.add_argument("--store", metavar="FILE", help="the project store (default: [store] path of the config)")
+    imp.add_argument("--decided-at", metavar="TIME",
+                     help="when the decisions were made (ISO date or time; default: now)")
 
     explain = sub.add_parser("explain", help="show why two records got their match weight",
                              description="Print, for two records of an earlier run, each field's "
@@ -101,9 +123,19 @@ def _dispatch(args) -> int:
         cfg = load_config(args.config)
         progress = _quiet if args.quiet else stderr_progress
         truth = read_truth(args.truth) if args.truth else None
-        result = run_pipeline(cfg, progress=progress,
-                              skip_unreadable=True if args.skip_unreadable else None, truth=truth)
-        written = write_outputs(result, args.out)
+        store_path = args.store or cfg.store
+        store = open_store(store_path) if store_path else None
+        try:
+            decisions, history = store_inputs(store) if store else (None, None)
+            result = run_pipeline(cfg, progress=progress,
+                                  skip_unreadable=True if args.skip_unreadable else None, truth=truth,
+                                  decisions=decisions, history=history)
+            written = write_outputs(result, args.out)
+            if store:
+                remember_run(store, result)
+        finally:
+            if store:
+                store.close()
         for w in result.warnings:
             print(f"linker: warning: {w}", file=sys.stderr)
         c = result.info["counts"]
@@ -114,6 +146,10 @@ def _dispatch(args) -> int:
         return 0
     if args.command == "explain":
         return _explain(args)
+    if args.command == "review":
+        if args.review_command != "import":
+            raise UsageError("review: say what to do, e.g. `linker review import WORKBOOK --config CONFIG`")
+        return _review_import(args)
     if args.command == "evaluate":
         records = read_records(args.out)
         truth = read_truth(args.truth)
@@ -124,6 +160,25 @@ def _dispatch(args) -> int:
         _print_scores(scores)
         return 0
     raise AssertionError(args.command)
+
+
+class UsageError(LinkerError):
+    """A command line that names no action."""
+
+
+def _review_import(args) -> int:
+    cfg = load_config(args.config)
+    store_path = args.store or cfg.store
+    if not store_path:
+        raise UsageError(f"{args.config}: no [store] path in the config and no --store given: "
+                         "decisions need a project store")
+    lines = read_review(args.workbook)
+    with open_store(store_path) as store:
+        count, skipped = import_decisions(store, lines, args.workbook, args.reviewer, args.decided_at)
+    already = len(lines) - skipped - count
+    print(f"{count} new decisions stored from {Path(args.workbook).name}; {already} were already stored, "
+          f"{skipped} pre-filled earlier decisions left as they were")
+    return 0
 
 
 def _explain(args) -> int:

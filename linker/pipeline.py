@@ -25,7 +25,11 @@ from .evaluate import evaluate_entities, truth_labels
 from .model import FellegiSunter
 from .checks import rule_table, run_checks
 from .queries import query_sheets, write_queries
+from .review import review_pairs, write_review
+from .fingerprint import record_fingerprints
+from .store import Store, assign_entity_ids, changes_table, open_store, snapshot_of
 from .relations import family_claims, family_values, relations_table
+from .link import labelled_fit, unattached_decisions
 from .link import blocking_report, entities_table, entity_ids, link_records, pairs_table
 from .records import normalize_records
 from .schema import CLAIM_COLUMNS, FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
@@ -55,7 +59,8 @@ class RunResult:
     warnings: list[str] = field(default_factory=list)
     extra: dict = field(default_factory=dict)   # frames added by later stages (pairs, entities...)
     model: object = None                         # the fitted FellegiSunter model
-    books: dict = field(default_factory=dict)    # workbooks: file name -> {sheet title: frame}
+    queries: dict = field(default_factory=dict)  # the agency query workbook: {sheet title: frame}
+    review: pd.DataFrame | None = None           # the pairs of the review workbook (review_pairs)
 
 
 def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
@@ -99,14 +104,22 @@ def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadabl
 
 
 def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
-                 skip_unreadable: bool | None = None, truth: pd.DataFrame | None = None) -> RunResult:
+                 skip_unreadable: bool | None = None, truth: pd.DataFrame | None = None,
+                 decisions: pd.DataFrame | None = None, history: dict | None = None) -> RunResult:
     """Run every stage on the delivery the config names and return the frames.
+
+    ``decisions`` (reviewer decisions by fingerprint: pair_id, fp_a, fp_b,
+    decision, ...) overrule the model; ``history`` ({"previous": the last run's
+    Snapshot or None, "next_number": the next unused entity number}) keeps entity
+    IDs stable across runs and yields ``changes.csv``.  Both come from the project
+    store (:func:`store_inputs`) when one is configured.
 
     With ``truth`` (person_id by record_id or by provenance, see
     :func:`linker.evaluate.truth_labels`) the blocking report gains pair
     completeness per rule and ``evaluation.csv`` holds pairwise and B-cubed scores.
     """
     timings = {}
+    started = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     t0 = time.perf_counter()
     raw, ledger, claims, files, columns, warnings = ingest_delivery(cfg, progress, skip_unreadable)
     timings["ingest_s"] = round(time.perf_counter() - t0, 3)
@@ -119,8 +132,14 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     ledger = ledger.reset_index(drop=True)
     records = records.reset_index(drop=True)
     t2 = time.perf_counter()
-    linked = link_records(records, cfg.linkage, progress)
-    records.insert(1, "entity_id", entity_ids(linked.labels))
+    linked = link_records(records, cfg.linkage, progress, decisions=decisions)
+    if history is None:
+        records.insert(1, "entity_id", entity_ids(linked.labels))
+    else:
+        prev = history.get("previous")
+        records.insert(1, "entity_id", assign_entity_ids(
+            linked.labels, record_fingerprints(records), None if prev is None else prev.records,
+            history.get("next_number")).to_numpy())
     fitted = hasattr(linked.model, "m_")
     pairs = pairs_table(records, linked) if fitted else pd.DataFrame()
     entities = entities_table(records)
@@ -135,7 +154,13 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     progress(f"checked: {len(findings)} finding lines")
     extra = {"pairs.csv": pairs, "entities.csv": entities, "relations.csv": relations,
              "findings.csv": findings, "blocking.csv": linked.blocking}
-    books = {"queries.xlsx": query_sheets(findings, records, rule_table(), group_by=cfg.queries_by)}
+    if history is not None:
+        extra["changes.csv"] = changes_table(history.get("previous"), snapshot_of(records, relations, findings))
+    if decisions is not None:
+        extra["decisions_unattached.csv"] = unattached_decisions(records, decisions)
+        extra["fit_check.csv"] = labelled_fit(linked)
+    queries = query_sheets(findings, records, rule_table(), group_by=cfg.queries_by)
+    review = review_pairs(records, pairs, findings, decisions) if fitted else None
     if truth is not None:
         labels, _ = truth_labels(records, truth)
         # records the truth does not cover count as singletons for pair completeness
@@ -160,10 +185,67 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
         },
         "timings": timings,
     }
+    info["started"] = started
     info["linkage"] = linked.info
     return RunResult(records, ledger, claims, files, columns, info, warnings,
-                     extra=extra, books=books,
+                     extra=extra, queries=queries, review=review,
                      model=linked.model if fitted else None)
+
+
+def store_inputs(store: Store) -> tuple[pd.DataFrame, dict]:
+    """The reviewer decisions and the run history a new run takes from the project store."""
+    return store.decisions(), {"previous": store.last_run(), "next_number": store.next_entity_number()}
+
+
+def remember_run(store: Store, result: RunResult) -> int:
+    """Record a finished run in the store (one transaction): its records with entity IDs,
+    relations and findings, so the next run keeps the IDs and reports what changed."""
+    info = {"started": result.info.get("started"), "config_sha256": result.info["config_sha256"],
+            "inputs": result.info["inputs"]}
+    return store.record_run(info, result.records, result.extra.get("relations.csv"),
+                            result.extra.get("findings.csv"))
+
+
+def import_decisions(store: Store, lines: pd.DataFrame, workbook, reviewer: str,
+                     decided_at: str | None = None) -> tuple[int, int]:
+    """Store the decisions read from a review workbook (:func:`linker.review.read_review`).
+
+    Each line's records are found by record id among the store's last run, which
+    gives their fingerprints (what the decision is keyed on) and the values the
+    reviewer saw.  Lines left as pre-filled are not stored again.  All or
+    nothing: any problem raises and stores no decision.  Returns (stored, skipped).
+    """
+    name = Path(workbook).name
+    todo = lines[~lines["prefilled"]] if "prefilled" in lines.columns else lines
+    skipped = int(len(lines) - len(todo))
+    if todo.empty:
+        return 0, skipped
+    prev = store.last_run()
+    if prev is None:
+        raise InputError(workbook, "the project store holds no run yet; decisions need the run that "
+                                   "wrote the workbook")
+    snap = prev.records.drop_duplicates("record_id").set_index("record_id")
+    problems = []
+    for line in todo.itertuples(index=False):
+        for rid in (line.record_a, line.record_b):
+            if rid not in snap.index:
+                problems.append(f"row {line.row}: record {rid} is not in the store's last run "
+                                "(the workbook is from another run; write a new one with `linker run`)")
+    if problems:
+        raise InputError(workbook, "; ".join(problems[:5]) + (f" (and {len(problems) - 5} more)"
+                                                              if len(problems) > 5 else ""))
+    a = snap.loc[todo["record_a"].to_numpy()]
+    b = snap.loc[todo["record_b"].to_numpy()]
+    frame = pd.DataFrame({
+        "fp_a": a["fingerprint"].to_numpy(), "fp_b": b["fingerprint"].to_numpy(),
+        "pair_id": todo["pair_id"].to_numpy(), "decision": todo["decision"].to_numpy(),
+        "decided_at": decided_at or time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "reviewer": reviewer, "note": todo["note"].to_numpy(), "source": name,
+        "values_a": a["values"].to_numpy() if "values" in a.columns else None,
+        "values_b": b["values"].to_numpy() if "values" in b.columns else None,
+        "line": todo["row"].to_numpy(),
+    })
+    return store.add_decisions(frame), skipped
 
 
 def all_claims(cfg: LinkConfig, records: pd.DataFrame, row_claims: pd.DataFrame) -> pd.DataFrame:
@@ -194,9 +276,12 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     for name, frame in tables.items():
         write_csv(frame, out / name)
         written.append(out / name)
-    for name, sheets in result.books.items():
-        write_queries(sheets, out / name)
-        written.append(out / name)
+    if result.queries:
+        write_queries(result.queries, out / "queries.xlsx")
+        written.append(out / "queries.xlsx")
+    if result.review is not None:
+        write_review(result.review, result.records, out / "review.xlsx")
+        written.append(out / "review.xlsx")
     info = dict(result.info)
     info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     info["warnings"] = result.warnings

@@ -513,7 +513,7 @@ def readme_sheet(lines: pd.DataFrame) -> pd.DataFrame:
 # ---------------------------------------------------------------------------
 # Reading back
 # ---------------------------------------------------------------------------
-READ_COLUMNS = ("pair_id", "decision", "note", "row", "prefilled")
+READ_COLUMNS = ("pair_id", "decision", "note", "row", "prefilled", "record_a", "record_b")
 
 
 def read_review(path: str | Path, known_pair_ids=None) -> pd.DataFrame:
@@ -626,7 +626,9 @@ def _read_line(row: list, r: int, pos: dict, locked: list, known: set | None):
                                      "('not sure' keeps the note) or clear the note"))
     if trouble or not code:
         return None, trouble
-    return (pair_id, code, note, r, _editable_digest(code, note) == written), trouble
+    rec_a = _text(row[pos["record A"]]) if "record A" in pos else ""
+    rec_b = _text(row[pos["record B"]]) if "record B" in pos else ""
+    return (pair_id, code, note, r, _editable_digest(code, note) == written, rec_a, rec_b), trouble
 
 
 def _edited(items: list[str], cells: str, r: int, problem) -> dict:
