@@ -26,6 +26,7 @@ from .model import FellegiSunter
 from .checks import rule_table, run_checks
 from .queries import query_sheets, write_queries
 from .review import review_pairs, write_review
+from .corrections import apply_corrections, read_corrections
 from .fingerprint import record_fingerprints
 from .store import Store, assign_entity_ids, changes_table, open_store, snapshot_of
 from .relations import family_claims, family_values, relations_table
@@ -127,6 +128,11 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     progress(f"read {len(files)} files, {n_rows} rows, {len(raw)} person-records")
     t1 = time.perf_counter()
     records = normalize_records(raw, cfg)
+    fix = None
+    if cfg.corrections is not None:
+        fix = apply_corrections(raw, read_corrections(cfg.corrections), cfg, records=records)
+        records = fix.records
+        warnings = list(warnings) + list(fix.warnings)
     timings["normalize_s"] = round(time.perf_counter() - t1, 3)
     progress("normalized person-records")
     ledger = ledger.reset_index(drop=True)
@@ -154,6 +160,9 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     progress(f"checked: {len(findings)} finding lines")
     extra = {"pairs.csv": pairs, "entities.csv": entities, "relations.csv": relations,
              "findings.csv": findings, "blocking.csv": linked.blocking}
+    if fix is not None:
+        extra["corrections_applied.csv"] = fix.applied
+        extra["corrections_unapplied.csv"] = fix.unapplied
     if history is not None:
         extra["changes.csv"] = changes_table(history.get("previous"), snapshot_of(records, relations, findings))
     if decisions is not None:

@@ -41,7 +41,8 @@ def _is_blank(v) -> bool:
     return v is None or (isinstance(v, float) and v != v) or (isinstance(v, str) and not v.strip())
 
 
-def normalize_records(raw: pd.DataFrame, cfg: LinkConfig) -> pd.DataFrame:
+def normalize_records(raw: pd.DataFrame, cfg: LinkConfig,
+                      corrections: pd.DataFrame | None = None) -> pd.DataFrame:
     """Turn raw records (from :mod:`linker.ingest`) into the normalized record table.
 
     Parameters
@@ -51,11 +52,19 @@ def normalize_records(raw: pd.DataFrame, cfg: LinkConfig) -> pd.DataFrame:
         ``<field>_obj`` per canonical field, and the per-sheet settings
         ``date_order, full_name_order, sex_codes``.
     cfg : LinkConfig
+    corrections : DataFrame, optional
+        Lines of a corrections file (:func:`linker.corrections.read_corrections`),
+        applied as :func:`linker.corrections.apply_corrections` says.  That
+        function also returns the corrections that matched no record; call it
+        directly when those are needed.
 
     Returns
     -------
     DataFrame with the columns of :data:`linker.schema.RECORD_COLUMNS`.
     """
+    if corrections is not None and len(corrections):
+        from .corrections import apply_corrections   # it normalizes through this module
+        return apply_corrections(raw, corrections, cfg).records
     if raw.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in RECORD_COLUMNS})
     parts = [_normalize_sheet(chunk, cfg) for _, chunk in
@@ -167,5 +176,6 @@ def _normalize_sheet(chunk: pd.DataFrame, cfg: LinkConfig) -> pd.DataFrame:
         out[fld] = np.array(_map_unique(out[fld + "_raw"].tolist(), fold_text), dtype=object)
 
     out["notes"] = np.array(["; ".join(x) for x in notes], dtype=object)
+    out["corrections"] = np.full(n, "", dtype=object)
     out["reg_no_shared"] = np.zeros(n, dtype=bool)
     return pd.DataFrame(out)

@@ -66,6 +66,7 @@ RECORD_COLUMNS = (
     "location",
     "status",
     "notes",              # normalization notes, "; " separated (ambiguous date order, zeros restored, ...)
+    "corrections",        # corrections applied from the corrections file, " | " separated ("" when none)
     "reg_no_raw",
     "given_name_raw",
     "family_name_raw",

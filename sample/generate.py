@@ -21,6 +21,11 @@ impossible or contradictory records, one set per check rule
 (``truth/injected.csv``, :class:`InjectionPlanner`): a dry render shows which
 cells are clean, the injections are placed there, and the final render gives
 the same messiness.
+
+:func:`write_production2` (``--production 2 --out DIR``) writes the next
+week's delivery of the same people: the files re-exported (rows shuffled,
+sheets reordered, one file renamed), about 10% of the defects written right, a
+few rows new and a few dropped, with its own truth and ``truth/changes.csv``.
 """
 
 from __future__ import annotations
@@ -492,6 +497,7 @@ class Row:
     order: tuple
     kind: str = ""
     added: bool = False       # added by a labelled injection (rendered with its own random stream)
+    new: bool = False         # new in production 2 (rendered last in its sheet, with its own stream)
 
 
 class Scenario:
@@ -1010,9 +1016,11 @@ class Delivery:
     """Renders the planned rows into files and collects the truth."""
 
     def __init__(self, out_dir: Path, vocabulary: str, seed: int, n_families: int,
-                 plan: dict | None = None, dry: bool = False):
+                 plan: dict | None = None, dry: bool = False, reexport: "Reexport | None" = None):
         """``plan``: cell overrides of the labelled injections, {(file, sheet, row, slot): {field: value}}
-        (slot "" for the row's event dates).  ``dry``: render without writing files."""
+        (slot "" for the row's event dates).  ``dry``: render without writing files.
+        ``reexport``: production 2 (:class:`Reexport`): its new rows are rendered too, and files
+        are saved re-exported (rows dropped and shuffled, sheets reordered, a file renamed)."""
         if vocabulary not in VOCAB:
             raise ValueError(f"vocabulary must be one of {', '.join(VOCAB)}, got {vocabulary!r}")
         self.out = Path(out_dir)
@@ -1022,8 +1030,13 @@ class Delivery:
         self.sc = Scenario(seed, n_families)
         self.rows = plan_rows(self.sc, seed)
         self.rows += extra_parent_rows(self.sc, self.rows, seed)
+        self.reexport = reexport
+        if reexport is not None:
+            self.rows += reexport.new_rows
         self.w_main = Writer(seed, self.sc)
         self.w_added = Writer(f"{seed}-added", self.sc, self.w_main.defects)   # rows added by injections
+        self.w_new = Writer(f"{seed}-production2", self.sc)                   # rows new in production 2
+        self.stamp = FIXED_TIME if reexport is None else reexport.stamp
         self.w = self.w_main
         self.layout_rng = random.Random(f"{seed}-layout")
         self.truth: list[dict] = []
@@ -1036,7 +1049,7 @@ class Delivery:
     # -- injection hooks -----------------------------------------------------------
     def begin(self, row: Row, rel: str, sheet: str, r: int):
         """Start rendering ``row`` at file row ``r``: pick its random stream, set the defect location."""
-        self.w = self.w_added if row.added else self.w_main
+        self.w = self.w_new if row.new else self.w_added if row.added else self.w_main
         self.w.where = {"source_file": rel, "sheet": sheet, "row": r}
         self.cur = (rel, sheet, r, row)
 
@@ -1060,7 +1073,7 @@ class Delivery:
     # -- helpers ---------------------------------------------------------------
     def rows_of(self, source: str, sheet: str | None = None) -> list[Row]:
         out = [r for r in self.rows if r.source == source and (sheet is None or r.sheet == sheet)]
-        return sorted(out, key=lambda r: (r.order[0], r.order[1], str(r.order[2])))
+        return sorted(out, key=lambda r: (r.new, r.order[0], r.order[1], str(r.order[2])))
 
     def rel(self, key: str) -> str:
         return self.vocab["files"][key]
@@ -1077,6 +1090,8 @@ class Delivery:
         dob = self.w.dob(prof, slot, p)
         sex = self.w.sex(prof, slot, p, sex_styles)
         digits, style = self.w.last_reg
+        given, family = self.override(slot, "given", given), self.override(slot, "family", family)
+        swapped = self.override(slot, "swapped", swapped)
         return {"reg": self.override(slot, "reg", reg), "given": given, "family": family, "swapped": swapped,
                 "dob": self.override(slot, "dob", dob), "sex": self.override(slot, "sex", sex),
                 "reg_digits": digits, "reg_style": style}
@@ -1161,7 +1176,8 @@ class Delivery:
                     put(ws, r, c, values.get(key), "dd/mm/yyyy")
                 r += 1
             ws.cell(row=r, column=1, value="Total")
-            ws.cell(row=r, column=len(cols), value=f"{len(rows)} entries")
+            kept = len(rows) - (self.reexport.n_dropped(rel, sheet) if self.reexport else 0)
+            ws.cell(row=r, column=len(cols), value=f"{kept} entries")
         self.save_xlsx(wb, rel)
 
     # -- OMC placements ------------------------------------------------------------------
@@ -1454,18 +1470,22 @@ class Delivery:
     def save_xlsx(self, wb, rel: str, base: Path | None = None):
         if self.dry:
             return
+        if self.reexport is not None and base is None:
+            wb, rel = self.reexport.workbook(wb, rel, self.truth)
         path = (base or self.out / "delivery") / rel
         path.parent.mkdir(parents=True, exist_ok=True)
         wb.properties.creator = "Northern March sample generator"
-        wb.properties.created = FIXED_TIME
-        wb.properties.modified = FIXED_TIME
+        wb.properties.created = self.stamp
+        wb.properties.modified = self.stamp
         buf = io.BytesIO()
         wb.save(buf)
-        path.write_bytes(repack_zip(buf.getvalue()))
+        path.write_bytes(repack_zip(buf.getvalue(), self.stamp))
 
     def save_csv(self, lines: list[list], rel: str, encoding: str):
         if self.dry:
             return
+        if self.reexport is not None:
+            lines, rel = self.reexport.csv_lines(lines, rel, self.truth)
         path = self.out / "delivery" / rel
         path.parent.mkdir(parents=True, exist_ok=True)
         text = io.StringIO()
@@ -1981,18 +2001,19 @@ def put(ws, r: int, c: int, value, date_format: str):
         cell.number_format = date_format
 
 
-def repack_zip(data: bytes) -> bytes:
+def repack_zip(data: bytes, when: dt.datetime = FIXED_TIME) -> bytes:
     """Rewrite an xlsx archive with fixed timestamps so that saves are byte-identical."""
     src = zipfile.ZipFile(io.BytesIO(data))
     out = io.BytesIO()
-    stamp = FIXED_TIME.strftime("%Y-%m-%dT%H:%M:%SZ").encode()
+    stamp = when.strftime("%Y-%m-%dT%H:%M:%SZ").encode()
+    zip_time = ZIP_TIME if when == FIXED_TIME else when.timetuple()[:6]
     with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as dst:
         for info in src.infolist():
             content = src.read(info.filename)
             if info.filename == "docProps/core.xml":
                 content = re.sub(rb"(<dcterms:(?:created|modified)[^>]*>)[^<]*(</dcterms:)",
                                  rb"\g<1>" + stamp + rb"\g<2>", content)
-            zi = zipfile.ZipInfo(info.filename, date_time=ZIP_TIME)
+            zi = zipfile.ZipInfo(info.filename, date_time=zip_time)
             zi.compress_type = zipfile.ZIP_DEFLATED
             zi.external_attr = 0o600 << 16
             dst.writestr(zi, content)
@@ -2006,6 +2027,374 @@ def write_table(path: Path, header: list[str], rows: list[list]):
     w.writerow(header)
     w.writerows(rows)
     path.write_bytes(text.getvalue().encode("utf-8"))
+
+
+# ---------------------------------------------------------------------------
+# Production 2: the next week's delivery of the same people
+# ---------------------------------------------------------------------------
+PRODUCTION2_STAMP = dt.datetime(2026, 11, 8, 0, 0, 0)     # re-exported a week after production 1
+PRODUCTION2_FIX_SHARE = 0.10                               # share of the messiness defects written right
+PRODUCTION2_NEW_ROWS = {"omc": 4, "tracing": 4, "legal": 4}
+PRODUCTION2_DROPPED = 12
+PRODUCTION2_CONFIG = "production2.toml"
+CHANGE_COLUMNS = ["change", "source_file", "sheet", "row", "slot", "person_id", "field", "kind",
+                  "previous_source_file", "previous_sheet", "previous_row", "written", "true_value"]
+CHANGES = ("corrected", "added", "dropped")
+# register number styles that keep all 8 digits readable
+SAFE_REG_STYLES = ("hr_dash", "nm_dash", "nm_space", "hr_space_lower", "hr_slash", "hr_plain", "grouped_space",
+                   "plain")
+# defect field -> the cell production 2 may write right
+DEFECT_CELL = {"reg_no": "reg_no", "name": "name", "given_name": "name", "family_name": "name",
+               "birth_date": "birth_date", "sex": "sex"}
+NAME_FIXES = {"accents dropped", "second family name dropped", "one-letter typo", "given and family name swapped"}
+DATE_FIXES = {"day and month swapped", "day off by one", "month off by one", "year off by one"}
+# files whose birth-date cells take no random draw, so a missing date can be written without
+# moving the random stream of the rows after it
+DOB_FILLABLE = ("transfers", "releases")
+
+
+def production2_file(rel: str) -> str:
+    """The renamed tracing export: the date of the new extract in its name."""
+    return rel.replace("_2026.csv", "_2026-11-08.csv")
+
+
+class Reexport:
+    """How production 2 saves its files: rows dropped and shuffled, sheets reordered, one file renamed.
+
+    The rows are rendered where production 1 has them (the new rows last in their sheet), so
+    the random streams, and with them every cell of production 1's rows, stay as they were;
+    the files are rearranged only when saved.  ``moved`` maps each rendered
+    (file, sheet, row) to where the saved file has it.
+    """
+
+    def __init__(self, seed, new_rows: list[Row], dropped: set, renamed: dict[str, str],
+                 stamp: dt.datetime = PRODUCTION2_STAMP):
+        self.seed = seed
+        self.new_rows = new_rows
+        self.dropped = dropped                 # (file, sheet, row) as rendered
+        self.renamed = renamed                 # file -> file name in production 2
+        self.stamp = stamp
+        self.moved: dict[tuple, tuple] = {}
+        self.sheet_order: dict[str, list[str]] = {}   # saved file -> its sheets in saved order
+
+    def n_dropped(self, rel: str, sheet: str) -> int:
+        return sum(1 for k in self.dropped if k[0] == rel and k[1] == sheet)
+
+    def order(self, rel: str, sheet: str, n_rows: int, person_rows: set) -> list[int]:
+        """Rendered row numbers in saved order: dropped rows left out, person rows shuffled among
+        themselves (titles, headers, blank, repeated-header, total and notes rows keep their place)."""
+        kept = [r for r in range(1, n_rows + 1) if (rel, sheet, r) not in self.dropped]
+        places = [i for i, r in enumerate(kept) if r in person_rows]
+        people = [kept[i] for i in places]
+        random.Random(f"{self.seed}-production2-rows-{rel}-{sheet}").shuffle(people)
+        for i, r in zip(places, people):
+            kept[i] = r
+        return kept
+
+    def _note(self, rel: str, sheet: str, rel2: str, sheet2: str, order: list[int]):
+        for new, old in enumerate(order, 1):
+            self.moved[(rel, sheet, old)] = (rel2, sheet2, new)
+
+    def workbook(self, wb, rel: str, truth: list[dict]):
+        """A new workbook with the sheets of ``wb`` in another order and their rows rearranged."""
+        rel2 = self.renamed.get(rel, rel)
+        titles = list(wb.sheetnames)
+        order = titles[:]
+        random.Random(f"{self.seed}-production2-sheets-{rel}").shuffle(order)
+        if order == titles:
+            order.reverse()
+        self.sheet_order[rel2] = order
+        out = openpyxl.Workbook()
+        out.remove(out.active)
+        for title in order:
+            src, dst = wb[title], out.create_sheet(title)
+            persons = {t["row"] for t in truth if t["source_file"] == rel and t["sheet"] == title}
+            rows = [list(r) for r in src.iter_rows(min_row=1, max_row=src.max_row)]
+            saved = self.order(rel, title, len(rows), persons)
+            for new, old in enumerate(saved, 1):
+                for c, cell in enumerate(rows[old - 1], 1):
+                    if cell.value is None:
+                        continue
+                    copy = dst.cell(row=new, column=c, value=cell.value)
+                    if cell.number_format != "General":
+                        copy.number_format = cell.number_format
+            self._note(rel, title, rel2, title, saved)
+        return out, rel2
+
+    def csv_lines(self, lines: list[list], rel: str, truth: list[dict]):
+        """The lines of a CSV file rearranged (the header stays first), and its saved name."""
+        rel2 = self.renamed.get(rel, rel)
+        sheet, sheet2 = Path(rel).stem, Path(rel2).stem
+        persons = {t["row"] for t in truth if t["source_file"] == rel}
+        saved = self.order(rel, sheet, len(lines), persons)
+        self._note(rel, sheet, rel2, sheet2, saved)
+        self.sheet_order[rel2] = [sheet2]
+        return [lines[r - 1] for r in saved], rel2
+
+
+def production2_new_rows(sc: Scenario, rows: list[Row], seed) -> list[Row]:
+    """Rows of the next week for persons already in the files: a shelter move (OMC), a family
+    member added to a tracing case, a repeat legal-aid visit in 2026.  Nobody passes 5 records."""
+    rng = random.Random(f"{seed}-production2-new")
+    P = sc.persons
+    fams = {f.fid: f for f in sc.families}
+    counts = person_counts(rows)
+    out: list[Row] = []
+
+    def take(row: Row):
+        row.new, row.kind = True, "new in production 2"
+        out.append(row)
+        for pid in row.slots.values():
+            counts[pid] += 1
+
+    kids = [pid for pid, p in P.items() if p.role == "child" and counts[pid] <= 4]
+    for c in rng.sample(kids, min(PRODUCTION2_NEW_ROWS["omc"], len(kids))):
+        p = P[c]
+        other = rng.choice([s for s in SHELTERS if s != p.shelter])
+        moved = min(p.placement + dt.timedelta(days=rng.randint(10, 60)), LAST_EVENT)
+        take(Row("omc", other, {"child": c}, {"placement_date": moved, "location": other,
+                                              "status": "transferred in"},
+                 {"caseworker": rng.choice(["K.M.", "A.R.", "T.O."])}, (moved, p.fid, "new")))
+    cases = {r.extras["case_id"] for r in rows if r.source == "tracing"}
+    listed = {r.slots["member"] for r in rows if r.source == "tracing"}
+    members = [pid for pid, p in P.items()
+               if fams[p.fid].case_id in cases and pid not in listed and counts[pid] <= 4]
+    for pid in rng.sample(members, min(PRODUCTION2_NEW_ROWS["tracing"], len(members))):
+        take(tracing_row(sc, fams[P[pid].fid], pid, 9))
+    adults = [pid for pid, p in P.items() if p.role != "child" and counts[pid] <= 4]
+    rng.shuffle(adults)
+    wanted = PRODUCTION2_NEW_ROWS["legal"]
+    for pid in adults:
+        if wanted == 0:
+            break
+        row = legal_row(sc, fams[P[pid].fid], pid, rng, later=True)
+        if row.sheet == "2026":                # the 2025 sheet is closed
+            take(row)
+            wanted -= 1
+    return out
+
+
+def written_sex_codes(seen: dict, persons: dict) -> dict:
+    """(file, slot, true sex) -> the code that file writes most for it in that slot."""
+    tally: Counter = Counter()
+    for (rel, _sheet, _r, slot), info in seen.items():
+        code = info["sex"]
+        if code and code != PROFILES[info["row"].source]["unknown_sex"]:
+            tally[(rel, slot, persons[info["pid"]].sex, code)] += 1
+    best: dict = {}
+    for key, _n in sorted(tally.items(), key=lambda kv: (kv[0][:3], -kv[1], kv[0][3])):
+        best.setdefault(key[:3], key[3])
+    return best
+
+
+def true_reg_cell(reg: str, style: str | None, source: str):
+    """The person's own number, in the cell's style when that keeps all 8 digits, else the file's
+    first such style."""
+    if style in SAFE_REG_STYLES or (style == "number" and not reg.startswith("0")):
+        keep = style
+    else:
+        keep = next(s for s in PROFILES[source]["reg_styles"] if s in SAFE_REG_STYLES)
+    value = format_reg(reg, keep)
+    return str(value) if source in ("tracing", "transfers") and isinstance(value, int) else value
+
+
+def production2_fixes(p1: "Delivery", injected: list[list], seed,
+                      share: float = PRODUCTION2_FIX_SHARE) -> tuple[dict, list[int]]:
+    """Cells production 2 writes right, as render overrides {(file, sheet, row, slot): {field: value}},
+    and the indices (in ``p1.w_main.defects``) of the defects they undo, about ``share`` of all.
+
+    Rows and persons of the labelled injections are left alone.  Only fixes that take no random
+    draw are chosen (a name, a number, a sex code, a shown birth date, a missing birth date where
+    the file formats dates without one), so every other cell renders as in production 1.
+    """
+    rng = random.Random(f"{seed}-production2-fixes")
+    P = p1.sc.persons
+    busy_rows = {tuple(x[1:4]) for x in injected} | {k[:3] for k in p1.plan}
+    busy_persons = {x[5] for x in injected}
+    cells: dict[tuple, list[int]] = {}
+    for i, x in enumerate(p1.w_main.defects):
+        cell = DEFECT_CELL.get(x["field"])
+        key = (x["source_file"], x["sheet"], x["row"], x["slot"])
+        if cell and x["slot"] and key[:3] not in busy_rows and x["person_id"] not in busy_persons:
+            cells.setdefault((key, cell), []).append(i)
+    codes = written_sex_codes(p1.seen, P)
+    candidates = []
+    for (key, cell), idx in cells.items():
+        info = p1.seen[key]
+        value = _fixed_cell(cell, {p1.w_main.defects[i]["kind"] for i in idx}, info, P[info["pid"]],
+                            codes.get((key[0], key[3], P[info["pid"]].sex)))
+        if value is not None:
+            candidates.append((key, idx, value))
+    rng.shuffle(candidates)
+    target = round(share * len(p1.w_main.defects))
+    overrides: dict[tuple, dict] = {}
+    undone: list[int] = []
+    for key, idx, value in candidates:
+        if len(undone) >= target:
+            break
+        overrides.setdefault(key, {}).update(value)
+        undone += idx
+    return overrides, sorted(undone)
+
+
+def _fixed_cell(cell: str, kinds: set, info: dict, p: Person, sex_code: str | None) -> dict | None:
+    source = info["row"].source
+    if cell == "reg_no":
+        return {"reg": true_reg_cell(p.reg, info["reg_style"], source)}
+    if cell == "name":
+        if not kinds <= NAME_FIXES:
+            return None
+        if source == "tracing" and to_cp1252(f"{p.given} {p.family}") != f"{p.given} {p.family}":
+            return None                     # cp1252 cannot hold the true name
+        return {"given": p.given, "family": p.family, "swapped": False}
+    if cell == "birth_date":
+        if (kinds <= DATE_FIXES and info["dob"] is not None) or (kinds == {"missing"} and source in DOB_FILLABLE):
+            return {"dob": p.dob}
+        return None
+    return {"sex": sex_code} if sex_code and kinds == {"missing or unknown"} else None
+
+
+def production2_dropped(p1: "Delivery", new_rows: list[Row], keep: set, seed,
+                        n: int = PRODUCTION2_DROPPED) -> set:
+    """Rows left out of production 2: not in ``keep``, and everyone on them keeps 2+ records."""
+    rng = random.Random(f"{seed}-production2-dropped")
+    counts = Counter(t["person_id"] for t in p1.truth) + person_counts(new_rows)
+    rows: dict[tuple, list[str]] = {}
+    for t in p1.truth:
+        rows.setdefault((t["source_file"], t["sheet"], t["row"]), []).append(t["person_id"])
+    keys = [k for k in rows if k not in keep]
+    rng.shuffle(keys)
+    out: set = set()
+    for k in keys:
+        if len(out) == n:
+            break
+        if all(counts[pid] > 2 for pid in rows[k]):
+            out.add(k)
+            for pid in rows[k]:
+                counts[pid] -= 1
+    return out
+
+
+def write_production2(out_dir, seed: int = SEED, n_families: int = N_FAMILIES) -> dict:
+    """Write production 2, the next week's delivery of the same people, under ``out_dir``.
+
+    The same files as :func:`write_delivery` writes (demo vocabulary), re-exported a week later:
+    workbooks saved again with their sheets in another order, the tracing CSV renamed with the
+    date of the extract, person rows shuffled within their sheets, about 10% of the messiness
+    defects written right, a few new rows for persons already in the files and a few rows left
+    out.  The labelled injections stay as they were.  Writes ``delivery/``, ``roster/`` (as in
+    production 1), ``truth/`` (``records.csv``, ``changes.csv``, and ``persons.csv``,
+    ``relations.csv``, ``roster.csv``, ``defects.csv``, ``injected.csv`` for this production) and
+    ``production2.toml`` (``configs/sample.toml`` pointed at this folder).
+
+    Returns
+    -------
+    dict
+        Counts: records, corrected defects and records, new and dropped rows and records, renamed files.
+    """
+    out = Path(out_dir)
+    if out.resolve() == HERE:
+        raise ValueError("production 2 is written into a folder of its own, not into sample/")
+    for sub in ("delivery", "roster", "truth"):
+        if (out / sub).is_dir():
+            shutil.rmtree(out / sub)
+    out.mkdir(parents=True, exist_ok=True)
+    dry = Delivery(out, "demo", seed, n_families, dry=True)
+    dry.render()
+    plan, injected = InjectionPlanner(dry, seed).run()
+    p1 = Delivery(out, "demo", seed, n_families, plan=plan, dry=True)
+    p1.render()
+    new_rows = production2_new_rows(p1.sc, p1.rows, seed)
+    fixes, undone = production2_fixes(p1, injected, seed)
+    keep = {tuple(x[1:4]) for x in injected} | {k[:3] for k in plan} | {k[:3] for k in fixes}
+    dropped = production2_dropped(p1, new_rows, keep, seed)
+    reexport = Reexport(seed, new_rows, dropped, {p1.rel("tracing"): production2_file(p1.rel("tracing"))})
+    d = Delivery(out, "demo", seed, n_families, plan={**plan, **fixes}, reexport=reexport)
+    d.render()
+    if d.w_main.defects != p1.w_main.defects:
+        raise RuntimeError("production 2 moved the random stream of production 1's rows")
+    rendered = {(t["source_file"], t["sheet"], t["row"], t["slot"], t["person_id"]) for t in d.truth}
+    if any((t["source_file"], t["sheet"], t["row"], t["slot"], t["person_id"]) not in rendered for t in p1.truth):
+        raise RuntimeError("production 2 rendered a row of production 1 elsewhere")
+    roster = d.write_roster()
+    changes = write_production2_truth(d, p1, injected, undone, roster)
+    (out / PRODUCTION2_CONFIG).write_text(production2_config(), encoding="utf-8")
+    kinds = Counter(c[0] for c in changes)
+    return {
+        "records": sum(1 for t in d.truth if (t["source_file"], t["sheet"], t["row"]) not in dropped),
+        "renamed": reexport.renamed,
+        "defects_corrected": kinds["corrected"],
+        "defects_production1": len(p1.w_main.defects),
+        "records_corrected": len({tuple(c[1:5]) for c in changes if c[0] == "corrected"}),
+        "rows_added": len(new_rows),
+        "records_added": kinds["added"],
+        "rows_dropped": len(dropped),
+        "records_dropped": kinds["dropped"],
+    }
+
+
+def write_production2_truth(d: "Delivery", p1: "Delivery", injected: list[list], undone: list[int],
+                            roster: list[dict]) -> list[list]:
+    """truth/ of production 2, in the saved files' coordinates; returns the changes.csv lines."""
+    rx = d.reexport
+    tdir = d.out / "truth"
+    tdir.mkdir(parents=True, exist_ok=True)
+    sheet_index = {(f, s): i for f, titles in rx.sheet_order.items() for i, s in enumerate(titles)}
+    slot_index = {"child": 0, "parent": 1, "": 2}
+
+    def saved(x: dict) -> tuple:
+        return rx.moved[(x["source_file"], x["sheet"], x["row"])]
+
+    def gone(x: dict) -> bool:
+        return (x["source_file"], x["sheet"], x["row"]) in rx.dropped
+
+    def order(line: list) -> tuple:
+        return (line[0], sheet_index[(line[0], line[1])], int(line[2]), slot_index[line[3]])
+
+    records = sorted(([*saved(t), t["slot"], t["person_id"]] for t in d.truth if not gone(t)), key=order)
+    write_table(tdir / "records.csv", ["source_file", "sheet", "row", "slot", "person_id"], records)
+    appearing = {r[4] for r in records}
+    write_table(tdir / "persons.csv",
+                ["person_id", "family_id", "role", "given_name", "family_name", "birth_date", "sex", "reg_no"],
+                [[p.pid, p.fid, p.role, p.given, p.family, p.dob.isoformat(), p.sex, p.reg]
+                 for p in d.sc.persons.values() if p.pid in appearing])
+    pairs = [(c, a) for f in d.sc.families for c in f.children for a in f.adults]
+    shown = {k: v for k, v in d.seen.items() if k[:3] not in rx.dropped}
+    write_table(tdir / "relations.csv", ["child_person_id", "parent_person_id", "evidence"],
+                [[c, a, e] for (c, a), e in zip(pairs, relation_evidence(shown, pairs))])
+    write_table(tdir / "roster.csv", ["roster_row", "person_id", "status"],
+                [[r["roster_row"], r["person_id"], r["status"]] for r in roster])
+    undone_set = set(undone)
+    keys = ["slot", "person_id", "field", "kind", "written", "true_value"]
+    defects = [[*saved(x), *(x[k] for k in keys)] for i, x in enumerate(d.w_main.defects)
+               if i not in undone_set and not gone(x)]
+    defects += [[*saved(x), *(x[k] for k in keys)] for x in d.w_new.defects]
+    write_table(tdir / "defects.csv", ["source_file", "sheet", "row", *keys], sorted(defects, key=order))
+    moved_injected = [[x[0], *rx.moved[tuple(x[1:4])], *x[4:]] for x in injected]
+    moved_injected.sort(key=lambda x: (RULES.index(x[0]), x[1], x[2], int(x[3]), x[4]))
+    write_table(tdir / "injected.csv", INJECTED_COLUMNS, moved_injected)
+    changes = []
+    for i in undone:
+        x = d.w_main.defects[i]
+        changes.append(["corrected", *saved(x), x["slot"], x["person_id"], x["field"], x["kind"],
+                        x["source_file"], x["sheet"], x["row"], x["written"], x["true_value"]])
+    for t in d.truth:
+        if d.seen[(t["source_file"], t["sheet"], t["row"], t["slot"])]["row"].new:
+            changes.append(["added", *saved(t), t["slot"], t["person_id"], "", "", "", "", "", "", ""])
+    changes.sort(key=lambda c: (CHANGES.index(c[0]), *order(c[1:5])))
+    dropped = [["dropped", "", "", "", t["slot"], t["person_id"], "", "", t["source_file"], t["sheet"], t["row"],
+                "", ""] for t in p1.truth if gone(t)]
+    changes += sorted(dropped, key=lambda c: (c[8], c[9], c[10], slot_index[c[4]]))
+    write_table(tdir / "changes.csv", CHANGE_COLUMNS, changes)
+    return changes
+
+
+def production2_config() -> str:
+    """configs/sample.toml with its paths into sample/ pointed at the production 2 folder."""
+    text = (HERE.parent / "configs" / "sample.toml").read_text(encoding="utf-8")
+    head = ("# Production 2 of the demo delivery, written by `python sample/generate.py --production 2`:\n"
+            "# configs/sample.toml with its paths into sample/ pointed at this folder.\n")
+    return head + text.replace('"../sample/', '"')
 
 
 # ---------------------------------------------------------------------------
@@ -2067,7 +2456,17 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=SEED)
     ap.add_argument("--families", type=int, default=N_FAMILIES)
     ap.add_argument("--vocabulary", choices=sorted(VOCAB), default="demo")
+    ap.add_argument("--production", type=int, choices=(1, 2), default=1,
+                    help="2: the next week's re-export of the same people (demo vocabulary, needs --out)")
     args = ap.parse_args(argv)
+    if args.production == 2:
+        if Path(args.out).resolve() == HERE:
+            ap.error("--production 2 writes into a folder of its own: pass --out DIR")
+        if args.vocabulary != "demo":
+            ap.error("--production 2 uses the demo vocabulary (its config is a copy of configs/sample.toml)")
+        summary = write_production2(args.out, seed=args.seed, n_families=args.families)
+        print(json.dumps(summary, indent=2, ensure_ascii=False))
+        return 0
     summary = write_delivery(args.out, seed=args.seed, n_families=args.families, vocabulary=args.vocabulary)
     print(json.dumps(summary, indent=2, ensure_ascii=False))
     return 0

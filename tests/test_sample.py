@@ -537,3 +537,126 @@ def test_relation_evidence_matches_the_delivery():
             assert (e == "case") == both_cases, (c, a, e)
         if e == "named":
             assert first_given in [x.strip() for x in named.get(a, "").split(",")], (c, a)
+
+
+# ---------------------------------------------------------------------------
+# Production 2: the next week's re-export of the same people (sample/generate.py --production 2)
+# ---------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def production2(tmp_path_factory):
+    out = tmp_path_factory.mktemp("production2")
+    return out, generate.write_production2(out)
+
+
+def load_csv(path: Path) -> pd.DataFrame:
+    return pd.read_csv(path, dtype=str, keep_default_na=False)
+
+
+def test_production2_is_deterministic(production2, tmp_path):
+    """Two writes give byte-identical files; the config is configs/sample.toml pointed at the folder."""
+    out, summary = production2
+    again = generate.write_production2(tmp_path)
+    assert again == summary
+    assert file_hashes(tmp_path) == file_hashes(out)
+    cfg = tomllib.loads((out / "production2.toml").read_text(encoding="utf-8"))
+    demo = tomllib.loads(DEMO_CONFIG.read_text(encoding="utf-8"))
+    assert cfg["delivery"]["folder"] == "delivery" and cfg["roster"]["file"] == "roster/class_list.xlsx"
+    assert {k: v for k, v in cfg.items() if k not in ("delivery", "roster")} == \
+        {k: v for k, v in demo.items() if k not in ("delivery", "roster")}
+    with pytest.raises(ValueError):
+        generate.write_production2(SAMPLE)           # never over the committed sample
+
+
+def test_production2_truth_points_at_person_cells(production2):
+    """records.csv matches the files exactly; changes.csv and injected.csv point at its records."""
+    out, summary = production2
+    check_truth_exact(out, out / generate.PRODUCTION2_CONFIG)
+    records = load_csv(out / "truth" / "records.csv")
+    changes = load_csv(out / "truth" / "changes.csv")
+    assert list(changes.columns) == generate.CHANGE_COLUMNS
+    assert set(changes["change"]) == set(generate.CHANGES)
+    now = changes.merge(records, on=KEY, how="left", suffixes=("", "_truth"))
+    listed = now["change"] != "dropped"
+    assert (now.loc[listed, "person_id_truth"] == now.loc[listed, "person_id"]).all()
+    before = changes.rename(columns={"source_file": "s", "sheet": "t", "row": "u"}).rename(
+        columns={f"previous_{k}": k for k in ("source_file", "sheet", "row")}).merge(
+        load_truth("records.csv"), on=KEY, how="left", suffixes=("", "_truth"))
+    had = before["change"] != "added"
+    assert (before.loc[had, "person_id_truth"] == before.loc[had, "person_id"]).all()
+    # the labelled injections are kept, at their new places
+    inj = load_csv(out / "truth" / "injected.csv").merge(records, on=KEY, how="left", suffixes=("", "_truth"))
+    assert len(inj) == len(load_truth("injected.csv"))
+    assert (inj["person_id_truth"] == inj["person_id"]).all()
+    # same people, each still with 2-5 records
+    assert (out / "truth" / "persons.csv").read_bytes() == (SAMPLE / "truth" / "persons.csv").read_bytes()
+    assert records["person_id"].value_counts().between(2, 5).all()
+
+
+def test_production2_changes_what_it_says(production2):
+    """~10% of the defects written right, a few rows new and dropped, rows shuffled, sheets reordered,
+    the tracing export renamed, and every other row exactly as production 1 has it."""
+    out, summary = production2
+    changes = load_csv(out / "truth" / "changes.csv")
+    counts = changes["change"].value_counts()
+    assert 0.09 <= counts["corrected"] / len(load_truth("defects.csv")) <= 0.11
+    assert counts["added"] >= 10 and counts["dropped"] >= 10
+    assert summary["defects_corrected"] == counts["corrected"] and summary["rows_added"] >= 10
+    old, new = delivery_rows(SAMPLE / "delivery"), delivery_rows(out / "delivery")
+    renamed = {"family_tracing_2026.csv": ("family_tracing_2026-11-08.csv", "family_tracing_2026-11-08")}
+    assert {renamed.get(f, (f, s)) for f, s in old} == set(new)
+    for path in sorted((SAMPLE / "delivery").rglob("*.xlsx")):
+        rel = path.relative_to(SAMPLE / "delivery")
+        before, after = openpyxl.load_workbook(path, read_only=True), openpyxl.load_workbook(out / "delivery" / rel,
+                                                                                           read_only=True)
+        if len(before.sheetnames) > 1:
+            assert sorted(after.sheetnames) == sorted(before.sheetnames) != after.sheetnames, rel
+        before.close()
+        after.close()
+    # rows: production 1 without its dropped and corrected rows == production 2 without its new and
+    # corrected rows, as multisets of cell values per sheet; and most rows have moved
+    p1_out = changes[changes["change"] != "added"]
+    p2_out = changes[changes["change"] != "dropped"]
+    gone = {(f, s, int(r)) for f, s, r in p1_out[["previous_source_file", "previous_sheet", "previous_row"]].values}
+    came = {(f, s, int(r)) for f, s, r in p2_out[["source_file", "sheet", "row"]].values}
+    truth1, truth2 = load_truth("records.csv"), load_csv(out / "truth" / "records.csv")
+    rows1 = {(f, s, int(r)) for f, s, r in truth1[["source_file", "sheet", "row"]].values}
+    rows2 = {(f, s, int(r)) for f, s, r in truth2[["source_file", "sheet", "row"]].values}
+    stayed = 0
+    for (f, s), cells in old.items():
+        f2, s2 = renamed.get(f, (f, s))
+        kept1 = Counter(tuple(cells[r - 1]) for r in range(1, len(cells) + 1)
+                        if (f, s, r) in rows1 and (f, s, r) not in gone)
+        kept2 = Counter(tuple(new[f2, s2][r - 1]) for r in range(1, len(new[f2, s2]) + 1)
+                        if (f2, s2, r) in rows2 and (f2, s2, r) not in came)
+        assert kept1 == kept2, (f, s)
+        stayed += sum(1 for r in range(1, min(len(cells), len(new[f2, s2])) + 1)
+                      if (f, s, r) in rows1 and cells[r - 1] == new[f2, s2][r - 1])
+    assert stayed < 0.1 * len(rows1)
+
+
+def test_production2_is_read_with_every_row_accounted_for(production2):
+    """The pipeline reads production 2 with its config: all rows ledgered, truth = records, fixes read right."""
+    out, _ = production2
+    res = run_pipeline(load_config(out / generate.PRODUCTION2_CONFIG))
+    assert accounting_problems(delivery_rows(out / "delivery"), res.ledger, res.records) == []
+    truth = pd.read_csv(out / "truth" / "records.csv", dtype={"row": int}, keep_default_na=False)
+    assert set(map(tuple, truth[KEY].values)) == set(map(tuple, res.records[KEY].values))
+    # a corrected cell reads as the person's true value
+    from linker.normalize import normalize_name
+    persons = load_truth("persons.csv").set_index("person_id")
+    recs = res.records.astype(str).set_index(KEY)
+    fixed = load_csv(out / "truth" / "changes.csv").query("change == 'corrected'")
+    wrong = []
+    for c in fixed.itertuples(index=False):
+        rec, p = recs.loc[(c.source_file, c.sheet, c.row, c.slot)], persons.loc[c.person_id]
+        if c.field == "reg_no":
+            ok = rec["reg_no"] == p["reg_no"]
+        elif c.field == "birth_date":
+            ok = rec["birth_date"] == p["birth_date"]
+        elif c.field == "sex":
+            ok = rec["sex"] == p["sex"]
+        else:
+            ok = rec["name_key"] == normalize_name(p["given_name"], p["family_name"]).name_key
+        if not ok:
+            wrong.append((c.source_file, c.sheet, c.row, c.slot, c.field))
+    assert len(fixed) > 200 and wrong == []
