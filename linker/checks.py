@@ -28,6 +28,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
+from .relations import claims_with_entities
 from .schema import FINDING_COLUMNS
 
 __all__ = ["CheckSettings", "CheckContext", "Rule", "RULES", "build_context", "run_checks",
@@ -156,16 +157,7 @@ def _lift_claims(rec: pd.DataFrame, claims: pd.DataFrame | None) -> pd.DataFrame
         return pd.DataFrame({c: pd.Series(dtype=object) for c in
                              cols + ["child_entity_id", "parent_entity_id"]})
     out = pd.DataFrame({c: _text(claims.reset_index(drop=True), c) for c in cols})
-    ent = rec.set_index("record_id")["entity_id"]
-    for side in ("child", "parent"):
-        ids = out[f"{side}_record_id"]
-        missing = ~ids.isin(ent.index)
-        if missing.any():
-            first = out[missing].iloc[0]
-            raise ValueError(f"{first['source_file']}, sheet {first['sheet']!r}, row {first['row']}: "
-                             f"the claim's {side} record is not among the records")
-        out[f"{side}_entity_id"] = ent.reindex(ids).to_numpy()
-    return out
+    return claims_with_entities(rec, out)
 
 
 def _relations_from_claims(claims: pd.DataFrame) -> pd.DataFrame:

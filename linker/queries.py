@@ -278,6 +278,11 @@ def write_queries(sheets: dict[str, pd.DataFrame], path: str | Path,
     for title, frame in sheets.items():
         sheet = book.create_sheet(title)
         fill_sheet(sheet, frame, readme=(title == README_TITLE))
+    return save_book(book, path, stamp)
+
+
+def save_book(book: Workbook, path: str | Path, stamp: dt.datetime = FIXED_STAMP) -> Path:
+    """Save an openpyxl workbook atomically with fixed document and member times (same bytes every time)."""
     stamp = stamp.replace(tzinfo=None, microsecond=0)
     book.properties.created = stamp
     book.properties.modified = stamp

@@ -24,25 +24,23 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
-import io
 from pathlib import Path
 
 import pandas as pd
 
 from .errors import LinkerError
 from .fingerprint import pair_keys, record_fingerprints
-from .io import atomic_write_bytes
 from .queries import (
     ANSWER_FILL,
     FIXED_STAMP,
     HEADER_FILL,
     fill_sheet,
+    save_book,
     put_cell,
     row_values,
     text_frame,
     column_width,
     cell_text,
-    fixed_zip,
 )
 from .schema import FINDING_COLUMNS
 
@@ -386,14 +384,7 @@ def write_review(table: pd.DataFrame, records: pd.DataFrame, path: str | Path,
     fill_sheet(readme, readme_sheet(lines), readme=True)
     readme.protection.sheet = True
     _fill_pairs(book.create_sheet(PAIRS_TITLE), lines)
-    stamp = stamp.replace(tzinfo=None, microsecond=0)
-    book.properties.created = stamp
-    book.properties.modified = stamp
-    buf = io.BytesIO()
-    book.save(buf)
-    path = Path(path)
-    atomic_write_bytes(path, fixed_zip(buf.getvalue(), stamp))
-    return path
+    return save_book(book, path, stamp)
 
 
 def _fill_pairs(sheet, lines: pd.DataFrame) -> None:
