@@ -16,7 +16,8 @@ from .config import load_config
 from .errors import InputError, LinkerError
 from .evaluate import evaluate_entities, read_truth
 from .link import explain_pair
-from .pipeline import (_quiet, import_decisions, read_model, read_records, remember_run, run_pipeline,
+from .pipeline import (_quiet, import_decisions, read_model, read_records, rebuild_report, remember_run,
+                       run_pipeline,
                        stderr_progress, store_inputs, write_outputs)
 from .review import read_review
 from .store import open_store
@@ -66,6 +67,13 @@ def build_parser() -> argparse.ArgumentParser:
     imp.add_argument("--store", metavar="FILE", help="the project store (default: [store] path of the config)")
     imp.add_argument("--decided-at", metavar="TIME",
                      help="when the decisions were made (ISO date or time; default: now)")
+
+    rep = sub.add_parser("report", help="rebuild report.html and report.xlsx from a finished run",
+                         description="Rebuild the descriptive report (report.html, self-contained with "
+                         "embedded charts, and report.xlsx) from the tables of a finished run in DIR, "
+                         "without relinking.")
+    rep.add_argument("out", metavar="DIR", help="folder of the run")
+    rep.add_argument("--config", metavar="CONFIG", help="config whose [report] settings to use (age bands)")
 
     explain = sub.add_parser("explain", help="show why two records got their match weight",
                              description="Print, for two records of an earlier run, each field's "
@@ -146,6 +154,10 @@ def _dispatch(args) -> int:
         return 0
     if args.command == "explain":
         return _explain(args)
+    if args.command == "report":
+        written = rebuild_report(args.out, load_config(args.config) if args.config else None)
+        print(f"report rebuilt: {', '.join(p.name for p in written)} in {args.out}")
+        return 0
     if args.command == "review":
         if args.review_command != "import":
             raise UsageError("review: say what to do, e.g. `linker review import WORKBOOK --config CONFIG`")

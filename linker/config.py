@@ -168,6 +168,7 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
     "queries": {"group_by": _STR},
+    "report": {"age_edges": _LIST, "cuts": _LIST, "child_slot": _STR},
     "store": {"path": _STR},
     "corrections": {"file": _STR},
     "rules": {"cutoff_date": (str, dt.date), "min_parent_age_gap": _NUM, "birth_date_tolerance_days": _INT,

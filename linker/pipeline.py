@@ -27,6 +27,8 @@ from .checks import rule_table, run_checks
 from .queries import query_sheets, write_queries
 from .review import review_pairs, write_review
 from .corrections import apply_corrections, read_corrections
+from .report import report_tables, write_report_html, write_report_xlsx
+from .roster import read_roster_sheet, reconcile_roster
 from .fingerprint import record_fingerprints
 from .store import Store, assign_entity_ids, changes_table, open_store, snapshot_of
 from .relations import family_claims, family_values, relations_table
@@ -62,6 +64,7 @@ class RunResult:
     model: object = None                         # the fitted FellegiSunter model
     queries: dict = field(default_factory=dict)  # the agency query workbook: {sheet title: frame}
     review: pd.DataFrame | None = None           # the pairs of the review workbook (review_pairs)
+    report: dict = field(default_factory=dict)   # the descriptive report's tables (report_tables)
 
 
 def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
@@ -160,6 +163,11 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     progress(f"checked: {len(findings)} finding lines")
     extra = {"pairs.csv": pairs, "entities.csv": entities, "relations.csv": relations,
              "findings.csv": findings, "blocking.csv": linked.blocking}
+    if cfg.roster is not None and fitted:
+        roster = read_roster_sheet(cfg)
+        extra["roster.csv"] = reconcile_roster(records, roster.entries, cfg.linkage, model=linked.model)
+        extra["roster_ledger.csv"] = roster.ledger.reindex(columns=list(LEDGER_COLUMNS))  # every roster row
+    report = report_tables(records, ledger, entities, relations, findings, cfg)
     if fix is not None:
         extra["corrections_applied.csv"] = fix.applied
         extra["corrections_unapplied.csv"] = fix.unapplied
@@ -197,7 +205,7 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     info["started"] = started
     info["linkage"] = linked.info
     return RunResult(records, ledger, claims, files, columns, info, warnings,
-                     extra=extra, queries=queries, review=review,
+                     extra=extra, queries=queries, review=review, report=report,
                      model=linked.model if fitted else None)
 
 
@@ -291,6 +299,8 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     if result.review is not None:
         write_review(result.review, result.records, out / "review.xlsx")
         written.append(out / "review.xlsx")
+    if result.report:
+        written += write_report(result.report, out)
     info = dict(result.info)
     info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     info["warnings"] = result.warnings
@@ -303,6 +313,29 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
     write_json(info, out / "run.json")
     written.append(out / "run.json")
     return written
+
+
+def write_report(tables: dict, out_dir: str | Path) -> list[Path]:
+    """report.html (self-contained, charts embedded) and report.xlsx (the same tables)."""
+    out = Path(out_dir)
+    return [write_report_html(tables, out / "report.html"), write_report_xlsx(tables, out / "report.xlsx")]
+
+
+def rebuild_report(out_dir: str | Path, cfg=None) -> list[Path]:
+    """Rebuild the report of a finished run from its tables, without relinking."""
+    out = Path(out_dir)
+    tables = {}
+    for name in ("records", "ledger", "entities", "relations", "findings"):
+        path = out / f"{name}.csv"
+        if not path.is_file():
+            raise InputError(path, f"no {name}.csv here; run `linker run CONFIG --out DIR` first")
+        try:
+            tables[name] = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8")
+        except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as err:
+            raise InputError(path, f"cannot read the table ({type(err).__name__})") from None
+    report = report_tables(tables["records"], tables["ledger"], tables["entities"], tables["relations"],
+                           tables["findings"], cfg)
+    return write_report(report, out)
 
 
 def read_records(out_dir: str | Path) -> pd.DataFrame:

@@ -130,3 +130,16 @@ def test_query_workbook_has_a_sheet_per_source_file_with_the_findings(run_dir):
     for source, row in by_file.items():
         assert row[header.index("queries")] == per_file[source]
     assert "not determinations" in " ".join(str(c[0]) for c in book["read me"].iter_rows(values_only=True))
+
+
+def test_report_is_rebuilt_from_the_run_tables_without_relinking(run_dir, tmp_path, capsys):
+    """`linker report DIR` gives the same report.html as the run wrote (tables read back as text)."""
+    import shutil
+
+    copy = tmp_path / "copy"
+    shutil.copytree(run_dir, copy)
+    (copy / "report.html").unlink()
+    assert main(["report", str(copy)]) == 0
+    assert (copy / "report.html").read_bytes() == (run_dir / "report.html").read_bytes()
+    assert main(["report", str(tmp_path / "nothing")]) == 3
+    assert "records.csv" in capsys.readouterr().err
