@@ -105,6 +105,7 @@ class LinkConfig:
     min_header_matches: int
     linkage: LinkageSettings = field(default_factory=LinkageSettings)
     checks: CheckSettings = field(default_factory=CheckSettings)
+    reported_totals: tuple = ()                 # totals agencies reported, to set beside computed counts
     queries_by: str = "file"                    # one query sheet per source "file" or per top "folder"
     store: Path | None = None                   # the project store (SQLite): decisions and entity IDs
     corrections: Path | None = None             # corrections file applied at normalization
@@ -168,6 +169,7 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "sheets": None,     # [{...}] checked by _SHEET_KEYS
     "roster": {"file": _STR, "sheet": _STR, "columns": _TABLE},
     "queries": {"group_by": _STR},
+    "reported_totals": None,   # [{category, value, reported, source, who}]
     "report": {"age_edges": _LIST, "cuts": _LIST, "child_slot": _STR},
     "store": {"path": _STR},
     "corrections": {"file": _STR},
@@ -331,6 +333,18 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
     except ValueError as exc:
         v.fail("[rules]", str(exc))
 
+    totals = []
+    for i, t in enumerate(v.array(doc.get("reported_totals", []), "[[reported_totals]]")):
+        where = f"[[reported_totals]] #{i + 1}"
+        t = v.table(t, where)
+        v.keys(t, {"category": _STR, "value": _STR, "reported": _INT, "source": _STR, "who": _STR}, where)
+        for key in ("category", "value", "reported"):
+            if key not in t:
+                v.fail(f"{where} {key}", "missing key")
+        v.choice(t["category"], ("sex", "location", "status", "age_band"), f"{where} category")
+        v.choice(t.get("who", "children"), ("children", "everyone"), f"{where} who")
+        totals.append({"category": t["category"], "value": t["value"], "reported": t["reported"],
+                       "source": t.get("source", ""), "who": t.get("who", "children")})
     queries_by = v.choice(doc.get("queries", {}).get("group_by", "file"), ("file", "folder"),
                           "[queries] group_by")
     try:
@@ -346,6 +360,7 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         age_reference=age_ref, sex_codes=sex_codes, full_name_order=full_order, slots=slots,
         fields=fields, relations=tuple(relations), sheets=tuple(sheets), roster=roster,
         cutoff_date=cutoff, min_parent_age_gap=gap, checks=checks, queries_by=queries_by,
+        reported_totals=tuple(totals),
         store=(base / doc["store"]["path"]).resolve() if "path" in doc.get("store", {}) else None,
         corrections=(base / doc["corrections"]["file"]).resolve() if "file" in doc.get("corrections", {}) else None,
         min_header_matches=delivery.get("min_header_matches", 2), raw=doc)

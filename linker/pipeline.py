@@ -29,6 +29,7 @@ from .review import review_pairs, write_review
 from .corrections import apply_corrections, read_corrections
 from .report import report_tables, write_report_html, write_report_xlsx
 from .roster import read_roster_sheet, reconcile_roster
+from .counts import count_table, write_counts
 from .fingerprint import record_fingerprints
 from .store import Store, assign_entity_ids, changes_table, open_store, snapshot_of
 from .relations import family_claims, family_values, relations_table
@@ -65,6 +66,7 @@ class RunResult:
     queries: dict = field(default_factory=dict)  # the agency query workbook: {sheet title: frame}
     review: pd.DataFrame | None = None           # the pairs of the review workbook (review_pairs)
     report: dict = field(default_factory=dict)   # the descriptive report's tables (report_tables)
+    counts: tuple | None = None                  # (reported vs computed, entities behind each count)
 
 
 def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadable: bool | None = None):
@@ -168,6 +170,10 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
         extra["roster.csv"] = reconcile_roster(records, roster.entries, cfg.linkage, model=linked.model)
         extra["roster_ledger.csv"] = roster.ledger.reindex(columns=list(LEDGER_COLUMNS))  # every roster row
     report = report_tables(records, ledger, entities, relations, findings, cfg)
+    counts = None
+    if cfg.reported_totals:
+        counts = count_table(records, pd.DataFrame(list(cfg.reported_totals)),
+                             tuple(cfg.raw.get("report", {}).get("age_edges", (5, 10, 14, 18))))
     if fix is not None:
         extra["corrections_applied.csv"] = fix.applied
         extra["corrections_unapplied.csv"] = fix.unapplied
@@ -205,7 +211,7 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     info["started"] = started
     info["linkage"] = linked.info
     return RunResult(records, ledger, claims, files, columns, info, warnings,
-                     extra=extra, queries=queries, review=review, report=report,
+                     extra=extra, queries=queries, review=review, report=report, counts=counts,
                      model=linked.model if fitted else None)
 
 
@@ -301,6 +307,8 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
         written.append(out / "review.xlsx")
     if result.report:
         written += write_report(result.report, out)
+    if result.counts is not None:
+        written.append(write_counts(*result.counts, out / "counts.xlsx"))
     info = dict(result.info)
     info["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     info["warnings"] = result.warnings
