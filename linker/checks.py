@@ -28,6 +28,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
+from .io import text_column
 from .relations import claims_with_entities
 from .schema import FINDING_COLUMNS
 
@@ -92,12 +93,7 @@ class Rule:
 
 # --- preparing the inputs ---------------------------------------------------------------------------
 
-def _text(frame: pd.DataFrame, col: str) -> pd.Series:
-    """A column as stripped text, "" for missing values (and for a missing column)."""
-    if col not in frame.columns:
-        return pd.Series("", index=frame.index, dtype=object)
-    s = frame[col]
-    return s.astype(object).where(s.notna(), "").astype(str).str.strip()
+_text = text_column                # column as stripped text (linker.io)
 
 
 def _dates(s: pd.Series) -> pd.Series:

@@ -239,3 +239,14 @@ def write_csv(frame: pd.DataFrame, path: Path) -> None:
 def write_json(obj, path: Path) -> None:
     atomic_write_bytes(path, (json.dumps(obj, indent=2, sort_keys=True, default=str) + "\n")
                        .encode("utf-8"))
+
+
+def text_column(frame: pd.DataFrame, col: str) -> pd.Series:
+    """A column as stripped text: "" for missing values and for a column the frame lacks.
+
+    The same text whether the frame was built in memory or read back from CSV as text.
+    """
+    if col not in frame.columns:
+        return pd.Series("", index=frame.index, dtype=object)
+    s = frame[col]
+    return s.astype(object).where(s.notna(), "").astype(str).str.strip().astype(object)

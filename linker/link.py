@@ -36,6 +36,7 @@ import pandas as pd
 from .blocking import BlockRule, block, pair_completeness, reduction_ratio
 from .cluster import constrained_entities
 from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare
+from .fingerprint import record_fingerprints
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
 __all__ = ["LinkageSettings", "LinkResult", "link_records", "person_fields", "person_rules",
@@ -141,7 +142,6 @@ def decision_positions(records: pd.DataFrame, decisions: pd.DataFrame | None) ->
     cols = ["left", "right", "decision", "pair_id"]
     if decisions is None or len(decisions) == 0:
         return pd.DataFrame({c: pd.Series(dtype=np.int64 if c in ("left", "right") else object) for c in cols})
-    from .fingerprint import record_fingerprints
     fp = pd.DataFrame({"fp": record_fingerprints(records).to_numpy(), "pos": np.arange(len(records))})
     d = decisions[["fp_a", "fp_b", "decision", "pair_id"]]
     m = d.merge(fp.rename(columns={"fp": "fp_a", "pos": "a"}), on="fp_a").merge(
@@ -158,7 +158,6 @@ def unattached_decisions(records: pd.DataFrame, decisions: pd.DataFrame | None) 
     or it is gone.  They are listed for another look, never applied and never dropped."""
     if decisions is None or len(decisions) == 0:
         return pd.DataFrame(columns=["pair_id", "fp_a", "fp_b", "decision", "missing"])
-    from .fingerprint import record_fingerprints
     have = set(record_fingerprints(records))
     a_ok, b_ok = decisions["fp_a"].isin(have), decisions["fp_b"].isin(have)
     out = decisions[~(a_ok & b_ok)].copy()

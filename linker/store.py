@@ -34,6 +34,7 @@ import pandas as pd
 
 from .errors import LinkerError
 from .fingerprint import FINGERPRINT_FIELDS, pair_keys, record_fingerprints
+from .io import text_column
 
 __all__ = [
     "SCHEMA_VERSION", "DECISIONS", "DECISION_LABELS", "CHANGE_KINDS", "CHANGE_COLUMNS",
@@ -98,12 +99,7 @@ class DecisionError(StoreError):
 # ---------------------------------------------------------------------------
 # Small helpers
 # ---------------------------------------------------------------------------
-def _text(frame: pd.DataFrame, col: str) -> pd.Series:
-    """Column as stripped text, missing column / NaN as ""."""
-    if col not in frame.columns:
-        return pd.Series("", index=frame.index, dtype=object)
-    s = frame[col]
-    return s.where(s.notna(), "").astype(str).str.strip().astype(object)
+_text = text_column                # column as stripped text (linker.io)
 
 
 def _rows(frame: pd.DataFrame, col: str) -> pd.Series:
