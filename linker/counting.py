@@ -22,7 +22,8 @@ def _text(s: pd.Series) -> pd.Series:
 
 
 def entity_value(records: pd.DataFrame, column: str, entity: str = "entity_id") -> pd.Series:
-    """Per entity, the most frequent non-empty value of ``column`` (ties: the smallest); "" when none."""
+    """Per entity, the most frequent non-empty value of ``column``; "" when none, and "" when two
+    values tie for most frequent (a conflict is never settled by guessing)."""
     vals = pd.DataFrame({"e": records[entity].astype(str), "v": _text(records[column])})
     ents = pd.Index(sorted(vals["e"].unique()), name=entity)
     vals = vals[vals["v"] != ""]
@@ -30,7 +31,10 @@ def entity_value(records: pd.DataFrame, column: str, entity: str = "entity_id") 
         return pd.Series("", index=ents, dtype=object)
     counts = vals.groupby(["e", "v"]).size().rename("n").reset_index()
     counts = counts.sort_values(["e", "n", "v"], ascending=[True, False, True], kind="mergesort")
-    best = counts.drop_duplicates("e").set_index("e")["v"]
+    top = counts.drop_duplicates("e").set_index("e")
+    runner = counts[counts.duplicated("e")].drop_duplicates("e").set_index("e")["n"]
+    tied = runner.reindex(top.index).eq(top["n"])
+    best = top["v"].where(~tied, "")
     return best.reindex(ents, fill_value="").rename(column)
 
 
@@ -88,13 +92,13 @@ def age_at(records: pd.DataFrame, event_columns=("intake_date",), entity: str = 
 
 def age_band(ages: pd.DataFrame, edges=(10,)) -> pd.Series:
     """Band labels ("under 10", "10 and over", or "under 5", "5 to 9", ...), ``unknown`` when the age
-    is unknown or its range straddles an edge (never guessed)."""
+    is unknown, negative (an event dated before the birth) or its range straddles an edge (never guessed)."""
     edges = sorted(int(e) for e in edges)
     labels = [f"under {edges[0]}"] + [f"{a} to {b - 1}" for a, b in zip(edges, edges[1:])] + [f"{edges[-1]} and over"]
     bins = [-np.inf] + edges + [np.inf]
     lo = pd.cut(ages["youngest"], bins, right=False, labels=False)
     hi = pd.cut(ages["oldest"], bins, right=False, labels=False)
-    same = lo.notna() & (lo == hi)
+    same = lo.notna() & (lo == hi) & (ages["youngest"] >= 0)   # an event before birth: unknown
     out = pd.Series(UNKNOWN, index=ages.index, dtype=object)
     out[same] = np.asarray(labels, dtype=object)[lo[same].astype(int).to_numpy()]
     return out

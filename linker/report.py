@@ -163,9 +163,12 @@ def age_cuts_table(ages: pd.DataFrame, cuts) -> pd.DataFrame:
 
 
 def location_table(records: pd.DataFrame) -> pd.DataFrame:
-    """People by their most frequent location; ``unknown`` when no record gives one."""
+    """People by their most frequent location, most people first; ``unknown`` (last) when no record
+    gives one or two locations tie."""
     where = entity_value(records, "location").replace("", UNKNOWN)
     counts = count_entities(where)
+    counts = counts.assign(_u=counts["group"] == UNKNOWN).sort_values(
+        ["_u", "entities", "group"], ascending=[True, False, True], kind="mergesort").drop(columns="_u")
     total = int(counts["entities"].sum())
     out = counts.rename(columns={"group": "location"})
     out["share of people"] = (out["entities"] / total).round(4) if total else 0.0
@@ -247,6 +250,8 @@ th{background:#eee}td:first-child,th:first-child{text-align:left}
 
 FIG_SIZE = (7.0, 3.2)
 FIG_DPI = 100
+CHART_STYLE = {"svg.hashsalt": "linker", "font.family": "DejaVu Sans", "path.simplify": True}
+BLUE, GREY = "#1f77b4", "#9a9a9a"
 
 
 def write_report_html(tables: dict[str, pd.DataFrame], path: str | Path,
@@ -305,46 +310,71 @@ def report_charts(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:
         charts["age_by_sex"] = _bar_png(bands, series, "children")
     loc = tables.get("location")
     if loc is not None and len(loc):
-        charts["location"] = _bar_png(loc["location"].astype(str).tolist(),
-                                      {"people": loc["entities"].to_numpy()}, "people", rotate=True)
+        charts["location"] = _barh_png(loc["location"].astype(str).tolist(), loc["entities"].to_numpy(),
+                                       "people", grey=(loc["location"].astype(str) == UNKNOWN).to_numpy())
     dq = tables.get("data_quality")
     if dq is not None and len(dq):
         top = dq.head(15)
-        charts["data_quality"] = _bar_png(top["source_file"].astype(str).tolist(),
-                                          {"findings per 100 records":
-                                           top["findings per 100 records"].fillna(0).to_numpy()},
-                                          "findings per 100 records", rotate=True)
+        charts["data_quality"] = _barh_png(top["source_file"].astype(str).tolist(),
+                                           top["findings per 100 records"].fillna(0).to_numpy(),
+                                           "findings per 100 records", grey=(top["records"] == 0).to_numpy())
     return charts
 
 
-def _bar_png(labels: list[str], series: dict[str, np.ndarray], ylabel: str, rotate: bool = False) -> bytes:
-    import matplotlib
+def _figure(height: float = FIG_SIZE[1]):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    with matplotlib.rc_context({"svg.hashsalt": "linker", "font.family": "DejaVu Sans",
-                                "path.simplify": True}):
-        fig = Figure(figsize=FIG_SIZE, dpi=FIG_DPI)
-        FigureCanvasAgg(fig)
-        ax = fig.add_subplot(1, 1, 1)
-        x = np.arange(len(labels))
-        width = 0.8 / max(len(series), 1)
-        for i, (name, values) in enumerate(series.items()):
-            ax.bar(x + (i - (len(series) - 1) / 2) * width, np.asarray(values, float), width, label=name)
-        ax.set_xticks(x)
-        ax.set_xticklabels([_short(s) for s in labels], rotation=30 if rotate else 0,
-                           ha="right" if rotate else "center", fontsize=8)
-        ax.set_ylabel(ylabel)
-        if len(series) > 1:
-            ax.legend(fontsize=8)
-        fig.tight_layout()
-        buf = io.BytesIO()
-        fig.savefig(buf, format="png", dpi=FIG_DPI, metadata={"Software": None})
+    fig = Figure(figsize=(FIG_SIZE[0], height), dpi=FIG_DPI)
+    FigureCanvasAgg(fig)
+    return fig, fig.add_subplot(1, 1, 1)
+
+
+def _png(fig) -> bytes:
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=FIG_DPI, metadata={"Software": None})
     return buf.getvalue()
 
 
-def _short(label: str, limit: int = 28) -> str:
-    return label if len(label) <= limit else "…" + label[-(limit - 1):]
+def _bar_png(labels: list[str], series: dict[str, np.ndarray], ylabel: str) -> bytes:
+    """Grouped vertical bars, one group per label, one bar per series (with a legend when several)."""
+    import matplotlib
+
+    with matplotlib.rc_context(CHART_STYLE):
+        fig, ax = _figure()
+        x = np.arange(len(labels))
+        width = 0.8 / max(len(series), 1)
+        for i, (name, values) in enumerate(series.items()):
+            ax.bar(x + (i - (len(series) - 1) / 2) * width, np.asarray(values, float), width, label=name,
+                   color=GREY if name == UNKNOWN else None)
+        ax.set_xticks(x)
+        ax.set_xticklabels(labels, fontsize=8)
+        ax.set_ylabel(ylabel)
+        if len(series) > 1:
+            ax.legend(fontsize=8)
+        return _png(fig)
+
+
+def _barh_png(labels: list[str], values: np.ndarray, xlabel: str, grey=None) -> bytes:
+    """Horizontal bars, first label on top, full labels (long file names stay readable);
+    bars flagged in ``grey`` (unknown, no records) drawn grey and the value written at each bar's end."""
+    import matplotlib
+
+    values = np.asarray(values, float)
+    grey = np.zeros(len(labels), bool) if grey is None else np.asarray(grey, bool)
+    with matplotlib.rc_context(CHART_STYLE):
+        fig, ax = _figure(max(1.6, 0.6 + 0.28 * len(labels)))
+        y = np.arange(len(labels))[::-1]
+        ax.barh(y, values, 0.7, color=[GREY if g else BLUE for g in grey])
+        ax.set_yticks(y)
+        ax.set_yticklabels(labels, fontsize=8)
+        ax.set_xlabel(xlabel)
+        top = values.max() if len(values) and values.max() > 0 else 1.0
+        ax.set_xlim(0, top * 1.12)
+        for yy, v in zip(y, values):
+            ax.text(v + top * 0.01, yy, _text(float(v)), va="center", fontsize=7)
+        return _png(fig)
 
 
 # ---------------------------------------------------------------------------

@@ -55,3 +55,14 @@ def test_count_entities_lists_empty_groups_and_refuses_repeated_entities():
     assert out.to_dict("list") == {"group": ["under 5", "5 and over", UNKNOWN], "entities": [1, 0, 1]}
     with pytest.raises(ValueError, match="one label per entity"):
         count_entities(pd.Series(["a", "b"], index=["E1", "E1"]))
+
+
+def test_a_tie_between_two_values_is_left_unknown_not_guessed():
+    recs = pd.DataFrame({"entity_id": ["E1", "E1", "E1", "E2", "E2", "E2"],
+                         "sex": ["M", "F", "", "F", "F", "M"]})
+    assert entity_value(recs, "sex").to_dict() == {"E1": "", "E2": "F"}
+
+
+def test_an_event_dated_before_the_birth_is_an_unknown_age_not_under_five():
+    recs = pd.DataFrame([_rec("E3", "S", birth="2024-10-26", intake="2016-08-12")])
+    assert age_band(age_at(recs), (5,)).tolist() == [UNKNOWN]

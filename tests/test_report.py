@@ -210,3 +210,77 @@ def test_workbook_holds_the_same_tables_formula_safe(tables, tmp_path):
     assert loc["B2"].value == tables["location"].loc[0, "entities"]
     age = book["age by sex"]
     assert age.max_row == len(tables["age_by_sex"]) + 1
+
+
+class _Tables(HTMLParser):
+    """Every table of a page as (heading, header cells, body rows of cell text)."""
+
+    def __init__(self):
+        super().__init__()
+        self.found, self.heading, self._cell, self._row, self._h2 = [], "", None, None, False
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "h2":
+            self._h2, self.heading = True, ""
+        elif tag == "table":
+            self.found.append((self.heading, [], []))
+        elif tag == "tr":
+            self._row = []
+        elif tag in ("th", "td"):
+            self._cell = ""
+
+    def handle_endtag(self, tag):
+        if tag == "h2":
+            self._h2 = False
+        elif tag in ("th", "td"):
+            self._row.append(self._cell)
+            self._cell = None
+        elif tag == "tr":
+            head, header, body = self.found[-1]
+            (body if header else header).extend([self._row] if header else self._row)
+            self._row = None
+
+    def handle_data(self, data):
+        if self._h2:
+            self.heading += data
+        if self._cell is not None:
+            self._cell += data
+
+
+def test_demo_report_html_against_counts_from_the_truth(tmp_path):
+    """The demo run's report.html parsed back: the charts embedded, every statistic with its missing
+    share, and the record and per-file counts equal to the generator's truth (invented demo data)."""
+    from linker import load_config, run_pipeline
+    from linker.pipeline import write_outputs
+
+    from conftest import ROOT
+
+    res = run_pipeline(load_config(ROOT / "configs" / "sample.toml"))
+    write_outputs(res, tmp_path)
+    page = (tmp_path / "report.html").read_text(encoding="utf-8")
+    pics = _Page()
+    pics.feed(page)
+    assert len(pics.images) == 3 and not pics.refs
+    for src in pics.images:
+        assert base64.b64decode(src.split(",", 1)[1], validate=True).startswith(PNG_SIGNATURE)
+    parser = _Tables()
+    parser.feed(page)
+    found = {head: pd.DataFrame(body, columns=header) for head, header, body in parser.found}
+    truth = pd.read_csv(ROOT / "sample" / "truth" / "records.csv", dtype=str, keep_default_na=False)
+
+    totals = found["Totals"].set_index("count")["value"].astype(int)
+    assert totals["records"] == len(truth)
+    persons = truth["person_id"].nunique()
+    assert abs(totals["entities (people)"] - persons) <= 0.05 * persons
+    quality = found["Data quality per source file (worst first)"].set_index("source_file")
+    assert quality["records"].astype(int).to_dict() == truth["source_file"].value_counts().to_dict()
+
+    stats = [h for h, header, _ in parser.found if "share missing" in header]
+    assert len(stats) == len(STAT_TABLES)
+    for head in stats:
+        frame = found[head]
+        known, missing = frame["n known"].astype(int), frame["n missing"].astype(int)
+        share = frame["share missing"].astype(float)
+        assert ((missing / (known + missing)).round(4) == share.round(4)).all(), head
+    everyone = found["Children by age at separation and sex"].set_index("sex").loc["all"]
+    assert int(everyone["n known"]) + int(everyone["n missing"]) == totals["children"]
