@@ -107,6 +107,13 @@ DEFAULT_PERSON_RULES = (
 )
 
 
+def _merge_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Sorted union of two sorted arrays without common values (stable sort merges the two runs)."""
+    out = np.concatenate([a, b])
+    out.sort(kind="stable")
+    return out
+
+
 def _unique(x: np.ndarray) -> np.ndarray:
     """Sorted distinct values by sorting (numpy 2's hash-based ``np.unique`` is far slower on int64 keys)."""
     x = np.sort(np.asarray(x).ravel())
@@ -119,21 +126,16 @@ def _unique(x: np.ndarray) -> np.ndarray:
 # integer-coded keys
 # ---------------------------------------------------------------------------
 
-def _blank_to_na(values) -> pd.Series:
-    """The column with NA for missing; text is stripped and "" counts as missing."""
-    s = pd.Series(values).reset_index(drop=True)
-    if s.dtype == object or pd.api.types.is_string_dtype(s.dtype):
-        na = s.isna()
-        s = s.astype(object).where(na, s.astype(str).str.strip())
-        s = s.where(~na & (s != ""), None)
-    return s
-
-
-def _column_codes(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """Codes for one column (-1 = missing: NA or empty string) and the distinct values."""
-    s = _blank_to_na(values)
-    codes, uniques = pd.factorize(s, use_na_sentinel=True)
-    return codes.astype(np.int64), np.asarray(uniques, dtype=object)
+def _column_codes(values: pd.Series, sort: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Codes for one column (-1 = missing: NA or empty text; text is stripped) and the distinct values
+    (in first-seen order, or sorted with ``sort``).  The text is cleaned once per distinct value."""
+    codes, uniques = pd.factorize(pd.Series(values).reset_index(drop=True), use_na_sentinel=True)
+    u = pd.Series(uniques)
+    if u.dtype == object or pd.api.types.is_string_dtype(u.dtype):
+        u = u.astype(object).astype(str).str.strip()
+        u = u.where(u != "", None)
+    ucodes, clean = pd.factorize(u, sort=sort, use_na_sentinel=True)   # values equal once stripped merge
+    return np.append(ucodes.astype(np.int64), -1)[codes], np.asarray(clean, dtype=object)
 
 
 def _combine_codes(code_list: list[np.ndarray]) -> np.ndarray:
@@ -316,8 +318,7 @@ def _near_id_rule(records: pd.DataFrame, rule: BlockRule):
 
 
 def _window_rule(records: pd.DataFrame, rule: BlockRule):
-    s = _blank_to_na(records[rule.columns[0]])
-    codes, _ = pd.factorize(s, sort=True, use_na_sentinel=True)
+    codes, _ = _column_codes(records[rule.columns[0]], sort=True)
     members = np.flatnonzero(codes >= 0)
     order = members[np.argsort(codes[members], kind="stable")]
     lefts, rights = [], []
@@ -382,16 +383,15 @@ def block(records: pd.DataFrame, rules: Sequence[BlockRule], *, return_capped: b
     if missing:
         raise ValueError(f"block: records lack column(s) {missing} named by the rules")
     n = len(records)
-    keys, bits, rows, capped_all = [], [], [], []
+    keys, rows, capped_all = [], [], []
     seen = np.zeros(0, dtype=np.int64)
     for k, rule in enumerate(rules):
         left, right, capped = _RUNNERS[rule.kind](records, rule)
         lo, hi = _canonical(left, right)
         key = _unique(lo * n + hi)
         new = key[~np.isin(key, seen, assume_unique=True)] if seen.size else key
-        seen = _unique(np.concatenate([seen, key]))
+        seen = _merge_sorted(seen, new)
         keys.append(key)
-        bits.append(np.full(key.size, 1 << k, dtype=np.int64))
         rows.append({"rule": rule.name, "kind": rule.kind, "pairs": int(key.size), "new_pairs": int(new.size),
                      "capped_blocks": len(capped), "capped_records": int(sum(c["size"] for c in capped))})
         capped_all += capped
@@ -399,17 +399,10 @@ def block(records: pd.DataFrame, rules: Sequence[BlockRule], *, return_capped: b
             warnings.warn(OversizedBlockWarning(
                 f"blocking rule {rule.name!r}: {len(capped)} block(s) over the cap of {rule.cap} records "
                 f"left unexpanded (largest {max(c['size'] for c in capped)} records)"), stacklevel=2)
-    if keys:
-        all_keys = np.concatenate(keys)
-        all_bits = np.concatenate(bits)
-    else:
-        all_keys = np.zeros(0, dtype=np.int64)
-        all_bits = np.zeros(0, dtype=np.int64)
-    order = np.argsort(all_keys, kind="stable")
-    sk, sb = all_keys[order], all_bits[order]
-    start = np.flatnonzero(np.concatenate(([True], sk[1:] != sk[:-1]))) if sk.size else np.zeros(0, dtype=np.int64)
-    uniq = sk[start]
-    mask = np.bitwise_or.reduceat(sb, start) if sk.size else np.zeros(0, dtype=np.int64)
+    uniq = seen
+    mask = np.zeros(uniq.size, dtype=np.int64)
+    for k, key in enumerate(keys):
+        mask[np.searchsorted(uniq, key)] |= np.int64(1 << k)
     pairs = pd.DataFrame({"left": uniq // max(n, 1), "right": uniq % max(n, 1), "rules": mask})
     rows.append({"rule": "(union)", "kind": "", "pairs": int(uniq.size), "new_pairs": int(uniq.size),
                  "capped_blocks": sum(r["capped_blocks"] for r in rows),

@@ -7,12 +7,14 @@ that holds wins.  The result of :func:`compare` is an ``int8`` matrix with one
 row per pair and one column per field.
 
 Work is done once per distinct value pair: each field's values are factorized
-into integer codes per record, the pairs' code pairs are made symmetric
-(smaller code first) and made unique across all chunks, those unique pairs are
-scored (string similarity through :func:`rapidfuzz.process.cpdist` with
-``workers=-1``), and the levels are broadcast back to the pairs chunk by chunk,
-so memory grows with the chunk size and the number of distinct value pairs,
-not with the pair count times the field count.
+into integer codes per record (:func:`prepare_fields`, once per record table),
+the pairs' code pairs are made symmetric (smaller code first) and factorized
+per chunk of pairs, each distinct code pair is scored once (string similarity
+through :func:`rapidfuzz.process.cpdist` with ``workers=-1``; the costly tests
+of a level run only on the pairs no earlier level took), and the levels are
+broadcast back, so memory grows with the chunk size, not with the pair count
+times the field count.  A chunk needs nothing but the prepared tables, so
+chunks can run anywhere (another core, another machine).
 
 Field kinds and their levels (after ``missing``):
 
@@ -54,6 +56,7 @@ leaves them out.
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
+from itertools import chain
 from typing import Sequence
 
 import numpy as np
@@ -67,6 +70,7 @@ __all__ = [
     "AGREEMENT",
     "DEFAULT_PERSON_FIELDS",
     "compare",
+    "prepare_fields",
     "jaro_winkler",
     "field_to_dict",
     "field_from_dict",
@@ -260,11 +264,10 @@ def _osa(a, b) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 def _text(records: pd.DataFrame, col: str) -> np.ndarray:
-    """Column as an object array of stripped strings, "" for missing."""
-    s = records[col].reset_index(drop=True)
-    na = s.isna().to_numpy()
-    out = s.astype(object).where(~na, "").astype(str).str.strip().to_numpy(dtype=object)
-    return out
+    """Column as an object array of stripped strings, "" for missing (cleaned once per distinct value)."""
+    codes, uniques = pd.factorize(records[col].reset_index(drop=True), use_na_sentinel=True)
+    clean = pd.Series(np.asarray(uniques, dtype=object)).astype(str).str.strip().to_numpy(dtype=object)
+    return np.append(clean, "")[codes]      # code -1 (missing) takes the appended ""
 
 
 def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
@@ -415,16 +418,17 @@ def _score_exact(t: _Table, f, a, b):
 
 
 def _token_codes(values: np.ndarray, max_tokens: int = 6) -> tuple[np.ndarray, np.ndarray]:
-    """Per value: a (n, T) matrix of token codes (-1 = no token) and the token count."""
-    tokens = pd.Series(values, dtype=object).str.split()
-    counts = tokens.str.len().fillna(0).to_numpy(dtype=np.int64)
-    flat = tokens.explode()
-    owner = flat.index.to_numpy()
-    valid = flat.notna().to_numpy()
-    codes = pd.factorize(flat.where(flat.notna(), None))[0]
-    pos = flat.groupby(level=0).cumcount().to_numpy()
-    mat = np.full((values.size, max_tokens), -1, dtype=np.int64)
-    keep = valid & (pos < max_tokens)
+    """Per value: a (n, T) matrix of token codes (-1 = no token) and the token count
+    (tokens are the whitespace-separated words; one flat factorization of all tokens)."""
+    split = [v.split() if isinstance(v, str) else [] for v in values]
+    counts = np.fromiter(map(len, split), dtype=np.int64, count=len(split))
+    mat = np.full((len(split), max_tokens), -1, dtype=np.int64)
+    if counts.sum() == 0:
+        return mat, counts
+    codes = pd.factorize(np.fromiter(chain.from_iterable(split), dtype=object, count=int(counts.sum())))[0]
+    owner = np.repeat(np.arange(len(split)), counts)
+    pos = np.arange(owner.size) - np.repeat(np.cumsum(counts) - counts, counts)
+    keep = pos < max_tokens
     mat[owner[keep], pos[keep]] = codes[keep]
     return mat, counts
 
@@ -466,32 +470,46 @@ def _key_subset(at: dict, ka: np.ndarray, kb: np.ndarray) -> np.ndarray:
 
 
 def _score_name(t: _Table, f, a, b):
+    """Levels tested in order, each only on the pairs no earlier level took (the costly tests last)."""
     at = t.attrs
+    n_levels = len(f.levels)
+    out = np.full(a.size, n_levels - 1, dtype=np.int8)
     va, vb = at["vcode"][a], at["vcode"][b]
-    exact = va == vb
-    jw = _jw_codes(at["vocab"], va, vb)
-    conds = [exact, jw >= f.high]
+    rest = np.arange(a.size)
+
+    def take(level: int, hit: np.ndarray) -> np.ndarray:
+        out[rest[hit]] = level
+        return rest[~hit]
+
+    level = 1
+    rest = take(level, va == vb)
+    jw = _jw_codes(at["vocab"], va[rest], vb[rest])
+    level += 1
+    high = jw >= f.high
+    rest, jw = take(level, high), jw[~high]
     if f.parts:
-        part = np.zeros(a.size, dtype=bool)
+        level += 1
+        part = np.zeros(rest.size, dtype=bool)
         if "tokens" not in at:
             at["tokens"], at["ntok"] = _token_codes(at["vocab"])
-        multi = (at["ntok"][va] > 1) | (at["ntok"][vb] > 1)
-        idx = np.flatnonzero(multi)
-        if idx.size:
-            ta, tb = at["tokens"][va[idx]], at["tokens"][vb[idx]]
-            share = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
-            part[idx] = share
-        conds.append(part)
-    conds.append(jw >= f.medium)
-    oa, ob = at["ocode"][a], at["ocode"][b]
-    ka, kb = at["kcode"][a], at["kcode"][b]
+        xa, xb = va[rest], vb[rest]
+        multi = np.flatnonzero((at["ntok"][xa] > 1) | (at["ntok"][xb] > 1))
+        if multi.size:
+            ta, tb = at["tokens"][xa[multi]], at["tokens"][xb[multi]]
+            part[multi] = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
+        rest, jw = take(level, part), jw[~part]
+    level += 1
+    rest = take(level, jw >= f.medium)
+    level += 1
     # a swap: this value equals the other side's other part, and the remaining cross pair is missing
     # or at least medium-similar (one shared word alone is not a swap); or equal order-free keys
-    cross_ab = (va == ob) & (ob >= 0)
-    cross_ba = (oa == vb) & (oa >= 0)
+    ra, rb = a[rest], b[rest]
+    xa, xb = va[rest], vb[rest]
+    oa, ob = at["ocode"][ra], at["ocode"][rb]
+    ka, kb = at["kcode"][ra], at["kcode"][rb]
     swapped = (ka == kb) & (ka >= 0)
     swapped |= _key_subset(at, ka, kb)
-    for hit, x, y in ((cross_ab, oa, vb), (cross_ba, va, ob)):
+    for hit, x, y in (((xa == ob) & (ob >= 0), oa, xb), ((oa == xb) & (oa >= 0), xa, ob)):
         idx = np.flatnonzero(hit & ~swapped)
         if idx.size:
             xi, yi = x[idx], y[idx]
@@ -499,10 +517,11 @@ def _score_name(t: _Table, f, a, b):
             both = np.flatnonzero(~ok)
             ok[both] = _jw_codes(at["vocab"], xi[both], yi[both]) >= f.medium
             swapped[idx[ok]] = True
-    conds.append(swapped)
-    pa, pb = at["pcode"][a], at["pcode"][b]
-    conds.append((pa == pb) & (pa >= 0))
-    return _first_true(conds, a.size, len(f.levels) - 1)
+    rest = take(level, swapped)
+    level += 1
+    pa, pb = at["pcode"][a[rest]], at["pcode"][b[rest]]
+    take(level, (pa == pb) & (pa >= 0))
+    return out
 
 
 def _score_date(t: _Table, f, a, b):
@@ -542,8 +561,29 @@ def _pair_arrays(pairs) -> tuple[np.ndarray, np.ndarray]:
     return np.asarray(left, dtype=np.int64), np.asarray(right, dtype=np.int64)
 
 
+def prepare_fields(records: pd.DataFrame, fields: Sequence[FieldComparison] = DEFAULT_PERSON_FIELDS) -> dict:
+    """Per field, the records' value codes and the distinct values' attributes ({field name: table}).
+
+    Computed once per record table and handed to :func:`compare` (``prepared=``)
+    when the same records are compared several times (candidate pairs, random
+    pairs for u, a reviewer's pairs): explicit state, no hidden cache.
+    """
+    fields = list(fields)
+    _check_fields(records, fields)
+    return {f.name: _prepare(records, f) for f in fields}
+
+
+def _check_fields(records: pd.DataFrame, fields: list) -> None:
+    names = [f.name for f in fields]
+    if len(set(names)) != len(names):
+        raise ValueError(f"compare: field names must be unique, got {names}")
+    need = sorted({c for f in fields for c in f.required_columns()} - set(records.columns))
+    if need:
+        raise ValueError(f"compare: records lack column(s) {need} named by the field comparisons")
+
+
 def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DEFAULT_PERSON_FIELDS,
-            *, chunk_size: int = 1_000_000) -> np.ndarray:
+            *, chunk_size: int = 2_000_000, prepared: dict | None = None) -> np.ndarray:
     """Comparison level matrix for candidate pairs.
 
     Parameters
@@ -555,19 +595,17 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
         Integer positions into ``records``.
     fields : sequence of FieldComparison
     chunk_size : int
-        Pairs handled at a time.
+        Pairs handled at a time: memory grows with it, not with the pair count.
+    prepared : dict, optional
+        :func:`prepare_fields` of these records and fields (computed when None).
 
     Returns
     -------
     ndarray of int8, shape (n_pairs, n_fields); level 0 = missing.
     """
     fields = list(fields)
-    names = [f.name for f in fields]
-    if len(set(names)) != len(names):
-        raise ValueError(f"compare: field names must be unique, got {names}")
-    need = sorted({c for f in fields for c in f.required_columns()} - set(records.columns))
-    if need:
-        raise ValueError(f"compare: records lack column(s) {need} named by the field comparisons")
+    if prepared is None:
+        prepared = prepare_fields(records, fields)
     left, right = _pair_arrays(pairs)
     n_pairs = left.size
     n = len(records)
@@ -576,32 +614,22 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
     out = np.zeros((n_pairs, len(fields)), dtype=np.int8)
     step = max(int(chunk_size), 1)
     for j, f in enumerate(fields):
-        table = _prepare(records, f)
+        table = prepared[f.name]
         codes = table.codes
         width = np.int64(max(int(codes.max()) + 1, 1)) if codes.size else np.int64(1)
-
-        def chunk_keys(s):
+        for s in range(0, n_pairs, step):
             ca, cb = codes[left[s:s + step]], codes[right[s:s + step]]
             lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
             key = lo * width + hi
             key[lo < 0] = -1
-            return key
-
-        # pass 1: the distinct value pairs over all chunks
-        uniq = np.zeros(0, dtype=np.int64)
-        for s in range(0, n_pairs, step):
-            k = _unique(chunk_keys(s))
-            uniq = _unique(np.concatenate([uniq, k[k >= 0]]))
-        # score each distinct value pair once
-        levels = _SCORERS[f.kind](table, f, uniq // width, uniq % width) if uniq.size \
-            else np.zeros(0, dtype=np.int8)
-        # pass 2: broadcast back
-        for s in range(0, n_pairs, step):
-            k = chunk_keys(s)
-            lv = np.zeros(k.size, dtype=np.int8)
-            ok = k >= 0
-            lv[ok] = levels[np.searchsorted(uniq, k[ok])]
-            out[s:s + step, j] = lv
+            # each distinct value pair of the chunk is scored once (hash factorization, no sort)
+            kcodes, uniq = pd.factorize(key, use_na_sentinel=False)
+            uniq = np.asarray(uniq, dtype=np.int64)
+            levels = np.zeros(uniq.size, dtype=np.int8)
+            ok = uniq >= 0
+            if ok.any():
+                levels[ok] = _SCORERS[f.kind](table, f, uniq[ok] // width, uniq[ok] % width)
+            out[s:s + step, j] = levels[kcodes]
     return out
 
 

@@ -412,12 +412,14 @@ class FellegiSunter:
         return tuple(f.name for f in self.fields if f.kind in ("name", "date"))
 
     # -- fit -----------------------------------------------------------------
-    def fit(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None):
+    def fit(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None,
+            prepared: dict | None = None):
         """Fit u (random pairs), m and the prior (EM over pattern counts) and term frequencies.
 
         ``pairs`` holds the candidate pairs (``left``, ``right`` positions);
         ``levels`` their level matrix from :func:`linker.compare.compare` with
-        the same ``fields`` (computed when None).
+        the same ``fields`` (computed when None); ``prepared`` the records'
+        :func:`linker.compare.prepare_fields` tables (computed when None).
         """
         self._check_settings()
         fields = self.fields
@@ -425,7 +427,7 @@ class FellegiSunter:
         left = pairs["left"].to_numpy(dtype=np.int64)
         right = pairs["right"].to_numpy(dtype=np.int64)
         if levels is None:
-            levels = compare(records, pairs, fields)
+            levels = compare(records, pairs, fields, prepared=prepared)
         levels = np.asarray(levels)
         if levels.shape != (left.size, len(fields)):
             raise ValueError(f"FellegiSunter.fit: levels shape {levels.shape} does not match "
@@ -437,7 +439,7 @@ class FellegiSunter:
         need_random = self.u_start is None or self.em_pairs == "all"
         if need_random:
             rl, rr = random_pairs(n, int(self.u_sample), int(self.seed))
-            rlev = compare(records, (rl, rr), fields)
+            rlev = compare(records, (rl, rr), fields, prepared=prepared)
         else:
             rl = rr = np.zeros(0, dtype=np.int64)
             rlev = np.zeros((0, len(fields)), dtype=np.int8)
@@ -547,9 +549,11 @@ class FellegiSunter:
             if not table:
                 continue
             exact = f.level("exact")
-            vals = records[f.columns[0]].reset_index(drop=True)
-            vals = vals.astype(object).where(vals.notna(), "").astype(str).str.strip()
-            freq = vals.map(pd.Series(table, dtype=np.float64)).to_numpy(dtype=np.float64)
+            # once per distinct value: factorize, look the cleaned values up, broadcast back
+            codes, uniques = pd.factorize(records[f.columns[0]].reset_index(drop=True))
+            clean = pd.Index(np.asarray(uniques, dtype=object)).astype(str).str.strip()
+            per_value = pd.Series(table, dtype=np.float64).reindex(clean).to_numpy(dtype=np.float64)
+            freq = np.append(per_value, np.nan)[codes]
             w = _log2(self.m_[f.name][exact]) - _log2(freq)
             if self.clamp_agreement:
                 w = np.where(w < 0, 0.0, w)
