@@ -96,12 +96,14 @@ class BlockRule:
             raise ValueError(f"BlockRule {self.name!r}: cap must be >= 2 or None, got {self.cap!r}")
 
 
-# Person records: identifiers, phonetic family name with birth year, given name
-# with birth date, and a sorted window over the order-free name key.
+# Person records: identifiers, phonetic family and given names with birth year,
+# given name with birth date, and a sorted window over the order-free name key.
+# (Soundex of the family name and the year alone makes blocks that grow with the
+# register: pairs rise with the square of its size.)
 DEFAULT_PERSON_RULES = (
     BlockRule("reg_no", "exact", ("reg_no",), cap=50),
     BlockRule("reg_no_near", "near_id", ("reg_no",), cap=50),
-    BlockRule("family_sx_year", "exact", ("family_soundex", "birth_year"), cap=500),
+    BlockRule("names_sx_year", "exact", ("family_soundex", "given_soundex", "birth_year"), cap=500),
     BlockRule("given_dob", "exact", ("given_key", "birth_date"), cap=500),
     BlockRule("name_window", "sorted_window", ("name_key",), window=5),
 )
@@ -273,6 +275,80 @@ def _variant_keys(ids: np.ndarray):
     return np.concatenate(owners), np.concatenate(keys)
 
 
+def _variant_codes(ids: np.ndarray):
+    """Variant groups of distinct ids: (owner, code, text).
+
+    ``owner[k]`` is the index into ``ids`` of the id that emitted variant ``k``
+    and ``code[k]`` its group (ids sharing a code are one substitution or one
+    adjacent transposition apart), codes in first-seen order as
+    :func:`_variant_keys` would give.  Ids of only digits (up to 16) are worked
+    as integers (no strings built); others through :func:`_variant_keys`.
+    ``text(k)`` gives the key text of variant ``k`` (for the capped-block report).
+    """
+    ids = np.asarray(ids, dtype=object).astype(str).astype(object)
+    lengths = pd.Series(ids, dtype=object).str.len().to_numpy(dtype=np.int64)
+    digit = pd.Series(ids, dtype=object).str.fullmatch(r"[0-9]+").to_numpy(dtype=bool)
+    owners, codes, tags = [], [], []
+    offset = 0
+    for length in np.unique(lengths):
+        if length == 0:
+            continue
+        idx = np.flatnonzero(lengths == length)
+        if length <= 16 and digit[idx].all():
+            num = ids[idx].astype(np.int64)
+            place = 10 ** np.arange(length - 1, -1, -1, dtype=np.int64)          # left to right
+            dig = (num[:, None] // place[None, :]) % 10
+            own, keys, tag = [], [], []
+            for p in range(length):
+                own.append(idx)
+                keys.append((num - dig[:, p] * place[p]) * 32 + p)
+                tag.append(np.full(idx.size, p, dtype=np.int64))
+            for p in range(length - 1):
+                a, b = dig[:, p], dig[:, p + 1]
+                differ = a != b
+                if not differ.any():
+                    continue
+                lo, hi = np.minimum(a, b)[differ], np.maximum(a, b)[differ]
+                canon = (num[differ] - a[differ] * place[p] - b[differ] * place[p + 1]
+                         + lo * place[p] + hi * place[p + 1])
+                own.append(idx[differ])
+                keys.append(canon * 32 + 16 + p)
+                tag.append(np.full(int(differ.sum()), 16 + p, dtype=np.int64))
+            key = np.concatenate(keys)
+            owner_g, tag_g = np.concatenate(own), np.concatenate(tag)
+        else:
+            owner_local, key = _variant_keys(ids[idx])
+            owner_g, tag_g = idx[owner_local], np.full(owner_local.size, -1, dtype=np.int64)
+            key = np.asarray(key, dtype=object)
+            texts_g = key
+        c, u = pd.factorize(key)
+        owners.append(owner_g)
+        codes.append(c.astype(np.int64) + offset)
+        tags.append((tag_g, texts_g if tag_g.size and tag_g[0] < 0 else None))
+        offset += len(u)
+    if not owners:
+        e = np.zeros(0, dtype=np.int64)
+        return e, e, lambda k: ""
+    owner = np.concatenate(owners)
+    code = np.concatenate(codes)
+    tag = np.concatenate([t for t, _ in tags])
+    bounds = np.cumsum([o.size for o in owners])
+
+    def text(k: int) -> str:
+        g = int(np.searchsorted(bounds, k, side="right"))
+        t, strings = tags[g]
+        if strings is not None:
+            return str(strings[k - (bounds[g - 1] if g else 0)])
+        v, p = str(ids[owner[k]]), int(tag[k])
+        if p < 16:
+            return v[:p] + "?" + v[p + 1:]
+        p -= 16
+        x, y = sorted((v[p], v[p + 1]))
+        return v[:p] + "<" + x + y + ">" + v[p + 2:]
+
+    return owner, code, text
+
+
 def _join_rows(mat: np.ndarray) -> np.ndarray:
     """Join the characters of each row of a 2-d ``<U1`` array into one string (object array)."""
     if mat.shape[1] == 0:
@@ -300,16 +376,15 @@ def _near_id_rule(records: pd.DataFrame, rule: BlockRule):
     l_same, r_same = _pairs_within(order, starts, same_sizes)
 
     # distinct ids one edit apart: join the variant keys
-    owner, vkeys = _variant_keys(ids.astype(str).astype(object))
-    vcodes, vuniq = pd.factorize(vkeys)
-    vorder, vgcodes, vstarts, vsizes = _groups(vcodes.astype(np.int64))
+    owner, vcodes, vtext = _variant_codes(ids)
+    vorder, vgcodes, vstarts, vsizes = _groups(vcodes)
     if rule.cap is not None and vsizes.size:
         # block size in records = records holding any id of the variant group
         rec_per_id = sizes[pos_of_id[owner[vorder]]]
         rec_sum = np.add.reduceat(rec_per_id, vstarts) if vorder.size else np.zeros(0, dtype=np.int64)
         over = (rec_sum > rule.cap) & (vsizes >= 2)
         if over.any():
-            capped += _capped_rows(rule, [str(vuniq[c]) for c in vgcodes[over]], rec_sum[over])
+            capped += _capped_rows(rule, [vtext(int(vorder[st])) for st in vstarts[over]], rec_sum[over])
             vsizes = np.where(over, 0, vsizes)
     a_items, b_items = _pairs_within(vorder, vstarts, vsizes)
     ida, idb = owner[a_items], owner[b_items]

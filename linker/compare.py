@@ -319,7 +319,8 @@ class _Table:
         self.attrs = attrs
 
 
-def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
+def _prepare(records: pd.DataFrame, f: FieldComparison, shared: dict | None = None) -> _Table:
+    """The field's table; ``shared`` (one prepare_fields call) lets fields keyed on one column share its work."""
     kind = f.kind
     value = _text(records, f.columns[0])
     if kind == "reg_no":
@@ -336,19 +337,26 @@ def _prepare(records: pd.DataFrame, f: FieldComparison) -> _Table:
     if kind == "name":
         n = len(records)
         other = _text(records, f.swap_column) if f.swap_column else np.full(n, "", dtype=object)
-        key = _text(records, f.key_column) if f.key_column else np.full(n, "", dtype=object)
+        key = _text(records, f.key_column) if f.key_column and f.key_column not in (shared or {}) \
+            else np.full(n, "", dtype=object)
         phon = _text(records, f.phonetic_column) if f.phonetic_column else np.full(n, "", dtype=object)
         # value and other name part share one vocabulary so that given <-> family can be compared as codes
         vo, vocab = _codes_blank(np.concatenate([value, other]))
         vcode, ocode = vo[:n], vo[n:]
-        kcode, kvocab = _codes_blank(key)
+        if shared is not None and f.key_column in shared:      # another name field keys on the same column
+            kcode, kvocab, ktok = shared[f.key_column]
+        else:
+            kcode, kvocab = _codes_blank(key)
+            ktok = _token_codes(kvocab)
+            if shared is not None and f.key_column:
+                shared[f.key_column] = (kcode, kvocab, ktok)
         pcode, _ = _codes_blank(phon)
         parts = np.stack([vcode, ocode, kcode, pcode], axis=1)
         tuples, first = _row_codes(parts)
         codes = np.where(vcode < 0, -1, tuples)
         at = parts[first]
         return _Table(codes, {"vcode": at[:, 0], "ocode": at[:, 1], "kcode": at[:, 2], "pcode": at[:, 3],
-                              "vocab": vocab, "kvocab": kvocab})
+                              "vocab": vocab, "kvocab": kvocab, "ktokens": ktok[0], "kntok": ktok[1]})
     if kind == "date":
         lo = _text(records, f.range_columns[0]) if f.range_columns else np.full(len(records), "", dtype=object)
         hi = _text(records, f.range_columns[1]) if f.range_columns else np.full(len(records), "", dtype=object)
@@ -570,7 +578,8 @@ def prepare_fields(records: pd.DataFrame, fields: Sequence[FieldComparison] = DE
     """
     fields = list(fields)
     _check_fields(records, fields)
-    return {f.name: _prepare(records, f) for f in fields}
+    shared: dict = {}
+    return {f.name: _prepare(records, f, shared) for f in fields}
 
 
 def _check_fields(records: pd.DataFrame, fields: list) -> None:

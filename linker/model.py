@@ -143,6 +143,14 @@ def pattern_counts(levels: np.ndarray, weights: np.ndarray | None = None):
         # rows as one mixed-radix int64 key: a 1-d sort instead of a row-wise one
         place = np.concatenate(([1], np.cumprod(radix[::-1])[:-1]))[::-1]
         key = levels @ place
+        space = int(np.prod(radix))
+        if space <= 1 << 24:       # few possible patterns: count by direct address, no sort
+            full = np.bincount(key, weights=None if weights is None else np.asarray(weights, dtype=np.float64),
+                               minlength=space)
+            present = np.bincount(key, minlength=space) > 0
+            keys = np.flatnonzero(present)
+            patterns = (keys[:, None] // place[None, :]) % radix[None, :]
+            return patterns, full[keys].astype(np.float64)
         keys, inverse = np.unique(key, return_inverse=True)
         patterns = (keys[:, None] // place[None, :]) % radix[None, :]
     else:
