@@ -14,6 +14,7 @@ import io
 import json
 import os
 import tempfile
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable
@@ -103,25 +104,80 @@ def file_kind(path: Path) -> str:
 # ---------------------------------------------------------------------------
 # Reading
 # ---------------------------------------------------------------------------
-def read_file(path: Path, folder: Path) -> FileData:
+@dataclass(frozen=True)
+class ReadLimits:
+    """Sizes past which a file is refused before it is read into memory (named in the error).
+
+    ``max_sheet_rows`` and ``max_sheet_columns`` default to the largest sheet a
+    spreadsheet program writes (1,048,576 rows, 16,384 columns; common
+    practice).  ``max_ratio`` catches an archive that inflates out of
+    proportion to its size (a "zip bomb") once it would inflate past
+    ``ratio_floor_bytes``.
+    """
+
+    max_file_bytes: int = 4 << 30
+    max_uncompressed_bytes: int = 4 << 30
+    max_ratio: float = 200.0
+    ratio_floor_bytes: int = 64 << 20
+    max_sheet_rows: int = 1_048_576
+    max_sheet_columns: int = 16_384
+
+
+DEFAULT_LIMITS = ReadLimits()
+
+
+def read_file(path: Path, folder: Path, limits: ReadLimits = DEFAULT_LIMITS) -> FileData:
     """Read every sheet of a workbook, or the one table of a CSV file.
 
     Raises
     ------
     InputError
-        The file is corrupt, password-protected, of an unknown kind or unreadable.
+        The file is corrupt, password-protected, of an unknown kind, unreadable
+        or over one of the ``limits``.
     """
     rel = relative_name(path, folder)
     kind = file_kind(path)
+    if kind in ("xlsx", "csv"):
+        try:
+            size = Path(path).stat().st_size
+        except OSError as exc:
+            raise InputError(rel, f"cannot open file ({exc.strerror or exc})") from None
+        if size > limits.max_file_bytes:
+            raise InputError(rel, f"file is {size:,} bytes, over the limit of {limits.max_file_bytes:,} bytes; "
+                                  "split it or raise the limit")
     if kind == "xlsx":
-        return FileData(rel, kind, read_xlsx(path, rel))
+        return FileData(rel, kind, read_xlsx(path, rel, limits))
     if kind == "csv":
         rows, encoding = read_csv_rows(path, rel)
+        _check_sheet_size(rel, Path(rel).stem, len(rows), max((len(r) for r in rows), default=0), limits)
         return FileData(rel, kind, [SheetData(Path(rel).stem, rows)], encoding)
     raise InputError(rel, f"unsupported file type {Path(path).suffix!r}: linker reads .xlsx and .csv")
 
 
-def read_xlsx(path: Path, rel: str) -> list[SheetData]:
+def _check_sheet_size(rel: str, sheet: str, n_rows: int, n_cols: int, limits: ReadLimits) -> None:
+    if n_rows > limits.max_sheet_rows or n_cols > limits.max_sheet_columns:
+        raise InputError(rel, f"sheet {sheet!r} has {n_rows:,} rows and {n_cols:,} columns, over the limit of "
+                              f"{limits.max_sheet_rows:,} rows and {limits.max_sheet_columns:,} columns; "
+                              "split it or raise the limit")
+
+
+def _check_archive(path: Path, rel: str, limits: ReadLimits) -> None:
+    """Refuse an archive that would inflate past the limits, from its directory (nothing inflated)."""
+    try:
+        with zipfile.ZipFile(path) as z:
+            inflated = sum(max(i.file_size, 0) for i in z.infolist())
+    except (zipfile.BadZipFile, OSError, ValueError):
+        return                                   # the reader below reports a damaged archive
+    packed = max(Path(path).stat().st_size, 1)
+    if inflated > limits.max_uncompressed_bytes:
+        raise InputError(rel, f"workbook would inflate to {inflated:,} bytes, over the limit of "
+                              f"{limits.max_uncompressed_bytes:,} bytes; it was not read")
+    if inflated > limits.ratio_floor_bytes and inflated / packed > limits.max_ratio:
+        raise InputError(rel, f"workbook would inflate {inflated / packed:,.0f} times its size ({inflated:,} "
+                              f"bytes), over the limit of {limits.max_ratio:,.0f} times; it was not read")
+
+
+def read_xlsx(path: Path, rel: str, limits: ReadLimits = DEFAULT_LIMITS) -> list[SheetData]:
     """All sheets of an .xlsx workbook with the fast calamine reader, rows from row 1."""
     from python_calamine import CalamineWorkbook
 
@@ -135,11 +191,15 @@ def read_xlsx(path: Path, rel: str) -> list[SheetData]:
                               "saved with an .xlsx name; save it unprotected as .xlsx")
     if not head.startswith(_ZIP_SIGNATURE):
         raise InputError(rel, "not a valid .xlsx workbook (the file is corrupt or of another type)")
+    _check_archive(path, rel, limits)
     try:
         book = CalamineWorkbook.from_path(str(path))
         sheets = []
         for name in book.sheet_names:
-            rows = book.get_sheet_by_name(name).to_python(skip_empty_area=False)
+            sheet = book.get_sheet_by_name(name)
+            _check_sheet_size(rel, name, max(sheet.height, sheet.total_height), max(sheet.width, sheet.total_width),
+                              limits)
+            rows = sheet.to_python(skip_empty_area=False)
             sheets.append(SheetData(name, [list(r) for r in rows]))
     except InputError:
         raise
