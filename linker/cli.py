@@ -45,6 +45,9 @@ def build_parser() -> argparse.ArgumentParser:
                      help="list corrupt or protected files in the ledger and go on, "
                      "instead of stopping")
     run.add_argument("--quiet", action="store_true", help="no progress lines on stderr")
+    run.add_argument("--group-readable", action="store_true",
+                     help="let the owner's group read the outputs (default: owner only, since they hold "
+                     "sensitive personal data)")
     run.add_argument("--truth", metavar="FILE",
                      help="a record -> person_id table (by record_id, or by source_file, sheet, row, "
                      "slot); adds pair completeness per rule to blocking.csv and writes evaluation.csv")
@@ -138,7 +141,7 @@ def _dispatch(args) -> int:
             result = run_pipeline(cfg, progress=progress,
                                   skip_unreadable=True if args.skip_unreadable else None, truth=truth,
                                   decisions=decisions, history=history)
-            written = write_outputs(result, args.out)
+            written = write_outputs(result, args.out, mode=0o640 if args.group_readable else 0o600)
             if store:
                 remember_run(store, result)
         finally:

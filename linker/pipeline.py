@@ -288,8 +288,9 @@ def all_claims(cfg: LinkConfig, records: pd.DataFrame, row_claims: pd.DataFrame)
     return out.drop_duplicates(["child_record_id", "parent_record_id"]).reset_index(drop=True)
 
 
-def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
-    """Write the run's tables into ``out_dir`` (each file atomically)."""
+def write_outputs(result: RunResult, out_dir: str | Path, mode: int = 0o600) -> list[Path]:
+    """Write the run's tables into ``out_dir`` (each file atomically, readable by its owner only;
+    ``mode`` relaxes that, e.g. 0o640 for the owner's group)."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     written = []
@@ -320,6 +321,8 @@ def write_outputs(result: RunResult, out_dir: str | Path) -> list[Path]:
         written.append(out / "model.json")
     write_json(info, out / "run.json")
     written.append(out / "run.json")
+    for path in written:
+        os.chmod(path, mode)
     return written
 
 

@@ -23,6 +23,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import json
+import os
 import sqlite3
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -875,6 +876,8 @@ def open_store(path) -> Store:
     path = Path(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
+        if not path.exists():                  # a new store is readable by its owner only
+            os.close(os.open(path, os.O_CREAT | os.O_WRONLY, 0o600))
         con = sqlite3.connect(path, isolation_level=None, timeout=10)
     except (OSError, sqlite3.Error) as err:
         raise StoreError(path, f"cannot open the store: {err}") from None

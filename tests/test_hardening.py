@@ -72,6 +72,21 @@ def test_outputs_are_owner_only_by_default(two_runs):
         assert mode & 0o077 == 0, f"{path.name} is readable by others: {oct(mode)}"
 
 
+def test_a_new_project_store_is_owner_only(tmp_path):
+    from linker.store import open_store
+
+    with open_store(tmp_path / "project" / "store.sqlite"):
+        pass
+    assert stat.S_IMODE((tmp_path / "project" / "store.sqlite").stat().st_mode) == 0o600
+
+
+def test_an_option_lets_the_group_read_the_outputs(tmp_path):
+    code, _, _ = _run(tmp_path / "g", "--group-readable", "--quiet")
+    assert code == 0
+    modes = {stat.S_IMODE(p.stat().st_mode) for p in (tmp_path / "g").iterdir()}
+    assert modes == {0o640}
+
+
 def test_no_name_or_registration_number_reaches_the_log(two_runs):
     """Progress lines, warnings and the summary name counts and files, never a person."""
     _, _, first, _ = two_runs
