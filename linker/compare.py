@@ -55,6 +55,8 @@ leaves them out.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass
 from itertools import chain
 from typing import Sequence
@@ -592,7 +594,8 @@ def _check_fields(records: pd.DataFrame, fields: list) -> None:
 
 
 def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DEFAULT_PERSON_FIELDS,
-            *, chunk_size: int = 2_000_000, prepared: dict | None = None) -> np.ndarray:
+            *, chunk_size: int = 2_000_000, prepared: dict | None = None,
+            workers: int | None = None) -> np.ndarray:
     """Comparison level matrix for candidate pairs.
 
     Parameters
@@ -607,12 +610,16 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
         Pairs handled at a time: memory grows with it, not with the pair count.
     prepared : dict, optional
         :func:`prepare_fields` of these records and fields (computed when None).
+    workers : int, optional
+        Threads comparing fields side by side (default: the machine's cores);
+        the result does not depend on it.
 
     Returns
     -------
     ndarray of int8, shape (n_pairs, n_fields); level 0 = missing.
     """
     fields = list(fields)
+    workers = (os.cpu_count() or 1) if workers is None else int(workers)
     if prepared is None:
         prepared = prepare_fields(records, fields)
     left, right = _pair_arrays(pairs)
@@ -622,7 +629,9 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
         raise ValueError(f"compare: pair positions must lie in 0..{n - 1}")
     out = np.zeros((n_pairs, len(fields)), dtype=np.int8)
     step = max(int(chunk_size), 1)
-    for j, f in enumerate(fields):
+
+    def one_field(j: int) -> None:
+        f = fields[j]
         table = prepared[f.name]
         codes = table.codes
         width = np.int64(max(int(codes.max()) + 1, 1)) if codes.size else np.int64(1)
@@ -639,6 +648,14 @@ def compare(records: pd.DataFrame, pairs, fields: Sequence[FieldComparison] = DE
             if ok.any():
                 levels[ok] = _SCORERS[f.kind](table, f, uniq[ok] // width, uniq[ok] % width)
             out[s:s + step, j] = levels[kcodes]
+
+    # fields are independent (each writes its own column of ``out``): run them on the cores
+    if workers > 1 and len(fields) > 1 and n_pairs >= 50_000:
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            list(pool.map(one_field, range(len(fields))))
+    else:
+        for j in range(len(fields)):
+            one_field(j)
     return out
 
 
