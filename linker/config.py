@@ -177,7 +177,8 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
               "max_parents": _INT},
     "linkage": {"link_at": _NUM, "review_at": _NUM, "override_weight": _NUM, "seed": _INT,
                 "random_pairs": _INT, "latent_classes": _INT, "name_high": _NUM, "name_medium": _NUM,
-                "date_days": _INT, "block_cap": _INT, "name_window": _INT, "guards": _BOOL, "max_iter": _INT},
+                "date_days": _INT, "block_cap": _INT, "name_window": _INT, "guards": _BOOL, "max_iter": _INT,
+                "memory_mb": _INT},
 }
 _SHEET_KEYS = {"file": _STR, "sheet": _STR, "slot": _STR, "slot_column": _STR,
                "slot_values": _TABLE, "date_order": _STR, "sex_codes": _TABLE,

@@ -63,6 +63,7 @@ class LinkageSettings:
     name_window: int = 5           # sorted-window size over the order-free name key
     guards: bool = True            # cap pairs whose given names or birth dates plainly differ
     max_iter: int = 1000           # EM iterations at most
+    memory_mb: int = 1024          # working memory for comparing candidate pairs (sets the chunk size)
 
     def __post_init__(self):
         if not 0.0 < self.review_at <= self.link_at < 1.0:
@@ -74,9 +75,17 @@ class LinkageSettings:
             raise ValueError(f"linkage: need 0 <= name_medium <= name_high <= 1, got {self.name_medium}, "
                              f"{self.name_high}")
         for name, low in (("random_pairs", 1000), ("block_cap", 2), ("name_window", 2), ("max_iter", 1),
-                          ("date_days", 0)):
+                          ("date_days", 0), ("memory_mb", 16)):
             if getattr(self, name) < low:
                 raise ValueError(f"linkage: {name} must be >= {low}, got {getattr(self, name)}")
+
+
+PAIR_BYTES = 128   # working bytes per candidate pair while two fields are compared side by side
+
+
+def pair_chunk(s: LinkageSettings) -> int:
+    """Candidate pairs compared at a time within the memory budget ``memory_mb``."""
+    return max(10_000, int(s.memory_mb) * (1 << 20) // PAIR_BYTES)
 
 
 def person_fields(s: LinkageSettings) -> tuple[FieldComparison, ...]:
@@ -185,7 +194,7 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
     progress(f"blocking: {len(pairs)} candidate pairs")
     t0 = time.perf_counter()
     prepared = prepare_fields(records, fields)
-    levels = compare(records, pairs, fields, prepared=prepared)
+    levels = compare(records, pairs, fields, prepared=prepared, chunk_size=pair_chunk(settings))
     t["compare_s"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     model = FellegiSunter(fields, seed=settings.seed, u_sample=settings.random_pairs,

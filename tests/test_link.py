@@ -144,3 +144,19 @@ def test_reviewer_decisions_by_fingerprint_overrule_the_model(demo):
     gone = decisions.iloc[:1].assign(fp_a="Fnot-in-this-run")
     listed = unattached_decisions(records, pd.concat([decisions, gone], ignore_index=True))
     assert listed["fp_a"].tolist() == ["Fnot-in-this-run"] and listed["missing"].tolist() == ["record A"]
+
+
+def test_the_memory_budget_sets_the_chunk_size_not_the_result():
+    from linker.compare import FieldComparison, compare
+    from linker.link import PAIR_BYTES, LinkageSettings, pair_chunk
+
+    assert pair_chunk(LinkageSettings(memory_mb=1024)) == 1024 * (1 << 20) // PAIR_BYTES
+    assert pair_chunk(LinkageSettings(memory_mb=16)) == 16 * (1 << 20) // PAIR_BYTES
+    rng = np.random.default_rng(3)
+    rec = pd.DataFrame({"reg_no": rng.choice(["12345674", "12345675", ""], 400), "sex": rng.choice(["M", "F"], 400)})
+    fields = (FieldComparison("reg_no", "reg_no", ("reg_no",)), FieldComparison("sex", "sex", ("sex",)))
+    pairs = (rng.integers(0, 400, 5000), rng.integers(0, 400, 5000))
+    whole = compare(rec, pairs, fields)
+    assert (compare(rec, pairs, fields, chunk_size=7, workers=1) == whole).all()
+    with pytest.raises(ValueError, match="memory_mb"):
+        LinkageSettings(memory_mb=8)
