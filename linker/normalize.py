@@ -122,7 +122,9 @@ _NON_ALNUM = re.compile(r"[\W_]+")
 def _strip_marks(text: str) -> str:
     """NFKD decomposition without the combining marks."""
     decomposed = unicodedata.normalize("NFKD", text)
-    return "".join(c for c in decomposed if not unicodedata.combining(c))
+    if decomposed.isascii():          # no combining marks
+        return decomposed
+    return "".join([c for c in decomposed if not unicodedata.combining(c)])
 
 
 def _fold_once(text: str) -> str:
@@ -165,6 +167,8 @@ def fold_text(value) -> str:
         if folded == text:
             break
         text = folded
+        if text.isascii() and text.upper() == text:
+            break        # upper-case ASCII letters, digits and single spaces: a fixed point
     return text
 
 
@@ -671,7 +675,11 @@ def split_full_name(full, order: str = "given_first") -> tuple[str, str]:
     if "," in text:
         family, given = text.split(",", 1)
         return _name_part(given), _name_part(family)
-    tokens = _name_part(text).split()
+    return _split_tokens(_name_part(text).split(), order)
+
+
+def _split_tokens(tokens: list[str], order: str) -> tuple[str, str]:
+    """The (given, family) cut of a folded full name without a comma (see :func:`split_full_name`)."""
     if not tokens:
         return "", ""
     if order == "given_first":
