@@ -1,7 +1,8 @@
 """Everything that touches files: listing a delivery, reading sheets, writing outputs.
 
-Readers return plain Python rows (lists of cell values) so the ingest stage
-stays independent of the file format.  Writers are atomic (temp file + rename)
+Readers return plain Python rows (sequences of cell values: lists from a
+workbook, tuples from a CSV file) so the ingest stage stays independent of
+the file format.  Writers are atomic (temp file + rename)
 and neutralize text that a spreadsheet would run as a formula.
 """
 
@@ -17,7 +18,7 @@ import tempfile
 import zipfile
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable
+from typing import Iterable, Sequence
 
 import pandas as pd
 
@@ -34,7 +35,7 @@ class SheetData:
     """One sheet as read: its name and its rows (row 1 first, as a spreadsheet shows it)."""
 
     name: str
-    rows: list[list]
+    rows: list[Sequence]       # lists (workbook) or tuples (CSV) of cell values
 
 
 @dataclass
@@ -149,7 +150,7 @@ def read_file(path: Path, folder: Path, limits: ReadLimits = DEFAULT_LIMITS) -> 
         return FileData(rel, kind, read_xlsx(path, rel, limits))
     if kind == "csv":
         rows, encoding = read_csv_rows(path, rel)
-        _check_sheet_size(rel, Path(rel).stem, len(rows), max((len(r) for r in rows), default=0), limits)
+        _check_sheet_size(rel, Path(rel).stem, len(rows), max(map(len, rows), default=0), limits)
         return FileData(rel, kind, [SheetData(Path(rel).stem, rows)], encoding)
     raise InputError(rel, f"unsupported file type {Path(path).suffix!r}: linker reads .xlsx and .csv")
 
@@ -223,8 +224,12 @@ def decode_text(data: bytes) -> tuple[str, str]:
         return data.decode("latin-1"), "latin-1"
 
 
-def read_csv_rows(path: Path, rel: str) -> tuple[list[list], str]:
-    """Rows of a CSV file as lists of strings; the file's first record is row 1."""
+def read_csv_rows(path: Path, rel: str) -> tuple[list[tuple], str]:
+    """Rows of a CSV file as tuples of strings; the file's first record is row 1.
+
+    Tuples rather than lists: a tuple of strings leaves the garbage collector's
+    lists, so a file of a million rows is not scanned again and again while it is read.
+    """
     try:
         data = Path(path).read_bytes()
     except OSError as exc:
@@ -241,7 +246,7 @@ def read_csv_rows(path: Path, rel: str) -> tuple[list[list], str]:
     except csv.Error:
         delimiter = ","
     try:
-        rows = list(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
+        rows = list(map(tuple, csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)))
     except csv.Error as exc:
         raise InputError(rel, f"malformed CSV ({exc})") from None
     return rows, encoding
