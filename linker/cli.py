@@ -6,6 +6,7 @@ Exit codes: 0 success; 2 bad config or usage; 3 unreadable input; 1 unexpected f
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import sys
 import traceback
@@ -55,6 +56,12 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--store", metavar="FILE",
                      help="the project store (SQLite) keeping reviewer decisions and entity IDs across "
                      "runs; default: [store] path of the config; without either, nothing is remembered")
+    run.add_argument("--engine", choices=("local", "spark"), default="local",
+                     help="where the linkage stage runs: local (default) or spark (Apache Spark, same "
+                     "results; needs `pip install linker[spark]` and Java)")
+    run.add_argument("--spark-master", metavar="URL",
+                     help="Spark master for --engine spark, e.g. local[4] or spark://host:7077 "
+                     "(default: [spark] master of the config, else local[2])")
 
     review = sub.add_parser("review", help="bring reviewer decisions into the project store",
                             description="Commands on the review workbook (review.xlsx) a run writes.")
@@ -138,9 +145,10 @@ def _dispatch(args) -> int:
         store = open_store(store_path) if store_path else None
         try:
             decisions, history = store_inputs(store) if store else (None, None)
-            result = run_pipeline(cfg, progress=progress,
-                                  skip_unreadable=True if args.skip_unreadable else None, truth=truth,
-                                  decisions=decisions, history=history)
+            with _linkage_engine(args, cfg, progress):
+                result = run_pipeline(cfg, progress=progress,
+                                      skip_unreadable=True if args.skip_unreadable else None, truth=truth,
+                                      decisions=decisions, history=history)
             written = write_outputs(result, args.out, mode=0o640 if args.group_readable else 0o600)
             if store:
                 remember_run(store, result)
@@ -179,6 +187,43 @@ def _dispatch(args) -> int:
 
 class UsageError(LinkerError):
     """A command line that names no action."""
+
+
+@contextlib.contextmanager
+def _linkage_engine(args, cfg, progress):
+    """Run the linkage stage of this run on the engine ``--engine`` names.
+
+    ``local``: nothing changes.  ``spark``: pyspark is checked first (a clear
+    error naming ``pip install linker[spark]`` when it is missing), a session
+    is started (master from ``--spark-master``, else ``[spark] master``, else
+    local[2]; ``[spark] conf`` settings) and stopped afterwards if this run
+    started it.  ``run_pipeline`` takes no engine argument, so for this one
+    call its linkage step (``link_records``) is swapped for the Spark stage,
+    which returns the same result, and put back on the way out.
+    """
+    if args.engine != "spark":
+        if args.spark_master:
+            raise UsageError("--spark-master applies to --engine spark only")
+        yield
+        return
+    from . import pipeline
+    from .spark import link_stage, require_spark, spark_session
+
+    require_spark()
+    from pyspark.sql import SparkSession
+
+    master = args.spark_master or cfg.spark.get("master") or "local[2]"
+    running = SparkSession.getActiveSession()
+    progress(f"starting Spark ({master})")
+    spark = spark_session(master, cfg.spark.get("conf") or None)
+    original = pipeline.link_records
+    pipeline.link_records = link_stage(spark)
+    try:
+        yield
+    finally:
+        pipeline.link_records = original
+        if running is None:
+            spark.stop()
 
 
 def _review_import(args) -> int:

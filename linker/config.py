@@ -109,6 +109,7 @@ class LinkConfig:
     queries_by: str = "file"                    # one query sheet per source "file" or per top "folder"
     store: Path | None = None                   # the project store (SQLite): decisions and entity IDs
     corrections: Path | None = None             # corrections file applied at normalization
+    spark: dict[str, Any] = field(default_factory=dict)   # [spark]: master (str) and conf (key -> str)
     raw: dict[str, Any] = field(repr=False, default_factory=dict)
 
     def settings_for(self, source_file: str, sheet: str) -> SheetSettings:
@@ -179,6 +180,7 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
                 "random_pairs": _INT, "latent_classes": _INT, "name_high": _NUM, "name_medium": _NUM,
                 "date_days": _INT, "block_cap": _INT, "name_window": _INT, "guards": _BOOL, "max_iter": _INT,
                 "memory_mb": _INT},
+    "spark": {"master": _STR, "conf": _TABLE},   # used by `linker run --engine spark` only
 }
 _SHEET_KEYS = {"file": _STR, "sheet": _STR, "slot": _STR, "slot_column": _STR,
                "slot_values": _TABLE, "date_order": _STR, "sex_codes": _TABLE,
@@ -352,6 +354,7 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         linkage = LinkageSettings(**doc.get("linkage", {}))
     except ValueError as exc:
         v.fail("[linkage]", str(exc).removeprefix("linkage: "))
+    spark = _spark_section(v, doc.get("spark", {}))
 
     return LinkConfig(
         linkage=linkage, source=str(source), config_hash=config_hash, folder=folder, patterns=patterns,
@@ -364,7 +367,27 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
         reported_totals=tuple(totals),
         store=(base / doc["store"]["path"]).resolve() if "path" in doc.get("store", {}) else None,
         corrections=(base / doc["corrections"]["file"]).resolve() if "file" in doc.get("corrections", {}) else None,
-        min_header_matches=delivery.get("min_header_matches", 2), raw=doc)
+        min_header_matches=delivery.get("min_header_matches", 2), spark=spark, raw=doc)
+
+
+def _spark_section(v: "_Validator", section: dict) -> dict[str, Any]:
+    """[spark] master = "local[2]" and conf = {"spark.x" = value}: conf values must be plain scalars."""
+    master = section.get("master")
+    if master is not None and not master.strip():
+        v.fail("[spark] master", "must name a Spark master, e.g. \"local[2]\" or \"spark://host:7077\"")
+    conf = {}
+    for key, value in v.table(section.get("conf", {}), "[spark] conf").items():
+        if isinstance(value, dict):
+            v.fail(f"[spark] conf {key}", "write each Spark setting as one quoted key, "
+                   "e.g. \"spark.sql.shuffle.partitions\" = 8")
+        if not key.startswith("spark."):
+            v.fail(f"[spark] conf {key}", "Spark settings start with \"spark.\"")
+        if isinstance(value, bool):
+            value = "true" if value else "false"
+        elif not isinstance(value, (str, int, float)):
+            v.fail(f"[spark] conf {key}", f"must be a string, number or boolean, got {type(value).__name__}")
+        conf[key] = str(value)
+    return {"master": master, "conf": conf}
 
 
 class _Validator:

@@ -163,6 +163,45 @@ def pattern_counts(levels: np.ndarray, weights: np.ndarray | None = None):
     return patterns, counts
 
 
+def _pattern_table(patterns, counts, n_fields: int) -> tuple[np.ndarray, np.ndarray]:
+    """Level rows (int64, lexicographically sorted, distinct) with float counts; equal rows are summed."""
+    patterns = np.asarray(patterns, dtype=np.int64).reshape(-1, n_fields)
+    counts = np.asarray(counts, dtype=np.float64).ravel()
+    if patterns.shape[0] != counts.size:
+        raise ValueError(f"fit_counts: {patterns.shape[0]} patterns but {counts.size} counts")
+    if patterns.shape[0] == 0:
+        return patterns, counts
+    order = np.lexsort(patterns.T[::-1])
+    patterns, counts = patterns[order], counts[order]
+    new = np.concatenate(([True], (patterns[1:] != patterns[:-1]).any(axis=1)))
+    if new.all():
+        return patterns, counts
+    return patterns[new], np.add.reduceat(counts, np.flatnonzero(new))
+
+
+def _weighted_union(cand_patterns, cand_counts, other_patterns, other_counts, w_other: float):
+    """Sorted union of two pattern tables; a pattern's count is its candidate count plus ``w_other``
+    added once per non-candidate random pair showing it, one addition after the other, so the floats
+    equal those of :func:`pattern_counts` over the candidate rows followed by the random rows."""
+    n_fields = cand_patterns.shape[1]
+    both = np.concatenate([cand_patterns, other_patterns]).reshape(-1, n_fields)
+    if both.shape[0] == 0:
+        return both, np.zeros(0)
+    order = np.lexsort(both.T[::-1])
+    s = both[order]
+    new = np.concatenate(([True], (s[1:] != s[:-1]).any(axis=1)))
+    slot = np.cumsum(new) - 1                      # sorted row -> distinct pattern
+    where = np.empty(both.shape[0], dtype=np.int64)
+    where[order] = slot
+    counts = np.zeros(int(new.sum()))
+    nc = cand_patterns.shape[0]
+    np.add.at(counts, where[:nc], cand_counts)      # each candidate pattern once: exact integers
+    reps = np.asarray(np.round(other_counts), dtype=np.int64)
+    if reps.sum():
+        np.add.at(counts, np.repeat(where[nc:], reps), float(w_other))
+    return s[new], counts
+
+
 def _normalize(v: np.ndarray, floor: float) -> np.ndarray:
     v = np.maximum(np.asarray(v, dtype=np.float64), 0.0)
     s = v.sum()
@@ -428,6 +467,11 @@ class FellegiSunter:
         ``levels`` their level matrix from :func:`linker.compare.compare` with
         the same ``fields`` (computed when None); ``prepared`` the records'
         :func:`linker.compare.prepare_fields` tables (computed when None).
+
+        The records and pairs are reduced to the aggregates of
+        :meth:`fit_counts` (pattern counts, per-field level counts of the
+        random pairs, value counts), which does the fitting; another engine can
+        compute the same aggregates its own way and call :meth:`fit_counts`.
         """
         self._check_settings()
         fields = self.fields
@@ -441,16 +485,90 @@ class FellegiSunter:
             raise ValueError(f"FellegiSunter.fit: levels shape {levels.shape} does not match "
                              f"{left.size} pairs x {len(fields)} fields")
         n_levels = [len(f.levels) for f in fields]
-        pair_space = n * (n - 1) // 2
-        warn: list[str] = []
 
-        need_random = self.u_start is None or self.em_pairs == "all"
-        if need_random:
-            rl, rr = random_pairs(n, int(self.u_sample), int(self.seed))
+        if self.needs_random_pairs():
+            rl, rr = self.random_pairs(n)
             rlev = compare(records, (rl, rr), fields, prepared=prepared)
         else:
             rl = rr = np.zeros(0, dtype=np.int64)
             rlev = np.zeros((0, len(fields)), dtype=np.int8)
+        random_level_counts = [np.bincount(rlev[:, j].astype(np.int64), minlength=n_levels[j])
+                               for j in range(len(fields))]
+
+        n_distinct = None
+        other_patterns, other_counts = np.zeros((0, len(fields)), dtype=np.int64), np.zeros(0)
+        if self.em_pairs == "all":
+            cand_key = _unique(left * max(n, 1) + right)
+            rkey = rl * max(n, 1) + rr
+            pos = np.searchsorted(cand_key, rkey)
+            is_cand = (pos < cand_key.size) & (cand_key[np.minimum(pos, max(cand_key.size - 1, 0))] == rkey) \
+                if cand_key.size else np.zeros(rkey.size, dtype=bool)
+            other_patterns, other_counts = pattern_counts(rlev[~is_cand])
+            n_distinct = int(cand_key.size)
+        cand_patterns, cand_counts = pattern_counts(levels)
+        return self.fit_counts(n, cand_patterns, cand_counts, random_level_counts, other_patterns, other_counts,
+                               self.tf_value_counts(records), n_distinct_candidates=n_distinct)
+
+    def needs_random_pairs(self) -> bool:
+        """Whether fitting uses random pairs (for u, or as stand-ins for the non-candidate pairs)."""
+        return self.u_start is None or self.em_pairs == "all"
+
+    def random_pairs(self, n_records: int) -> tuple[np.ndarray, np.ndarray]:
+        """The random pairs :meth:`fit` compares: ``random_pairs(n_records, u_sample, seed)``."""
+        return random_pairs(n_records, int(self.u_sample), int(self.seed))
+
+    def tf_value_counts(self, records: pd.DataFrame) -> dict[str, pd.Series]:
+        """Per term-frequency field: counts of its cleaned (stripped, non-empty) values in ``records``.
+
+        Counts of several parts of the records (say partitions) add up to the counts of the whole.
+        """
+        self._check_settings()
+        by_name = {f.name: f for f in self.fields}
+        out = {}
+        for name in self._tf_names():
+            vals = records[by_name[name].columns[0]].reset_index(drop=True)
+            vals = vals.astype(object).where(vals.notna(), "").astype(str).str.strip()
+            out[name] = vals[vals != ""].value_counts(sort=False)
+        return out
+
+    def fit_counts(self, n_records: int, cand_patterns, cand_counts, random_level_counts, other_patterns,
+                   other_counts, tf_counts: dict, *, n_distinct_candidates: int | None = None):
+        """Fit from aggregates: what :meth:`fit` computes from the records, any engine can compute.
+
+        Parameters
+        ----------
+        n_records : int
+            Records the pairs are drawn from (the pair space is n(n-1)/2).
+        cand_patterns, cand_counts : (P, F) int array, (P,) counts
+            Distinct level rows of the candidate pairs and how many pairs show each.
+        random_level_counts : sequence of F arrays
+            Per field, the count of each level code (0 = missing first) among all
+            random pairs (:meth:`random_pairs`), candidates or not; empty arrays
+            when :meth:`needs_random_pairs` is false.
+        other_patterns, other_counts : (Q, F) int array, (Q,) counts
+            Level rows of the random pairs that are not candidate pairs and their
+            counts (used with ``em_pairs="all"`` only).
+        tf_counts : dict field -> Series value -> count
+            :meth:`tf_value_counts` of the records (the parts' counts summed).
+        n_distinct_candidates : int, optional
+            Distinct candidate pairs (default: the sum of ``cand_counts``).
+
+        The result is bit-identical to :meth:`fit` on the records those aggregates
+        describe: EM sees the same patterns in the same (sorted) order with the same
+        weighted counts, accumulated in the same order.
+        """
+        self._check_settings()
+        fields = self.fields
+        n = int(n_records)
+        n_levels = [len(f.levels) for f in fields]
+        cand_patterns, cand_counts = _pattern_table(cand_patterns, cand_counts, len(fields))
+        other_patterns, other_counts = _pattern_table(other_patterns, other_counts, len(fields))
+        n_pairs = int(round(float(cand_counts.sum())))
+        n_distinct = n_pairs if n_distinct_candidates is None else int(n_distinct_candidates)
+        pair_space = n * (n - 1) // 2
+        warn: list[str] = []
+        rcounts = [np.asarray(c) for c in random_level_counts] if len(random_level_counts) else []
+        n_random = int(round(float(np.sum(rcounts[0])))) if rcounts and np.size(rcounts[0]) else 0
 
         # u start
         u0 = []
@@ -458,7 +576,10 @@ class FellegiSunter:
             if self.u_start is not None and f.name in self.u_start:
                 u0.append(np.asarray(self.u_start[f.name], dtype=np.float64))
                 continue
-            c = np.bincount(rlev[:, j].astype(np.int64), minlength=n_levels[j])[1:].astype(np.float64)
+            full = np.zeros(n_levels[j])
+            if rcounts and np.size(rcounts[j]):
+                full[:np.size(rcounts[j])] = np.asarray(rcounts[j], dtype=np.float64)
+            c = full[1:]
             if c.sum() == 0:
                 warn.append(f"field {f.name}: no random pair has a value on both sides; u set uniform")
                 u0.append(np.full(n_levels[j] - 1, 1.0 / (n_levels[j] - 1)))
@@ -473,20 +594,13 @@ class FellegiSunter:
 
         # EM data: pattern counts
         if self.em_pairs == "all":
-            cand_key = _unique(left * max(n, 1) + right)
-            rkey = rl * max(n, 1) + rr
-            pos = np.searchsorted(cand_key, rkey)
-            is_cand = (pos < cand_key.size) & (cand_key[np.minimum(pos, max(cand_key.size - 1, 0))] == rkey) \
-                if cand_key.size else np.zeros(rkey.size, dtype=bool)
-            others = rlev[~is_cand]
-            n_other = pair_space - cand_key.size
-            w_other = (n_other / others.shape[0]) if others.shape[0] else 0.0
-            data = np.concatenate([levels, others]) if others.size else levels
-            wts = np.concatenate([np.ones(levels.shape[0]), np.full(others.shape[0], w_other)])
-            patterns, counts = pattern_counts(data, wts)
+            n_other = pair_space - n_distinct
+            n_others = int(round(float(other_counts.sum())))
+            w_other = (n_other / n_others) if n_others else 0.0
+            patterns, counts = _weighted_union(cand_patterns, cand_counts, other_patterns, other_counts, w_other)
             p0 = self.prior if self.prior is not None else min(1.0 / max(n - 1, 1), 0.1)
         else:
-            patterns, counts = pattern_counts(levels)
+            patterns, counts = cand_patterns, cand_counts
             p0 = self.prior if self.prior is not None else 0.1
         if patterns.shape[0] == 0:
             raise ValueError("FellegiSunter.fit: no pairs to fit on")
@@ -526,21 +640,19 @@ class FellegiSunter:
         self.n_iter_ = int(n_iter)
         self.converged_ = bool(converged)
         self.warnings_ = warn
-        self.n_records_ = int(n)
-        self.n_candidates_ = int(left.size)
-        self.n_random_ = int(rl.size)
+        self.n_records_ = n
+        self.n_candidates_ = n_pairs
+        self.n_random_ = n_random
         self.pair_space_ = self.em_pairs
         self.tf_ = {}
-        by_name = {f.name: f for f in fields}
         for name in self._tf_names():
-            f = by_name[name]
-            vals = records[f.columns[0]].reset_index(drop=True)
-            vals = vals.astype(object).where(vals.notna(), "").astype(str).str.strip()
-            vals = vals[vals != ""]
-            if vals.empty:
+            vc = tf_counts.get(name)
+            vc = pd.Series(dtype=np.int64) if vc is None else pd.Series(vc)
+            vc = vc[vc > 0]
+            if vc.empty:
                 self.tf_[name] = {}
                 continue
-            freq = vals.value_counts(sort=False) / len(vals)
+            freq = vc.astype(np.int64) / int(vc.sum())
             freq = freq.sort_index()
             self.tf_[name] = {str(k): float(v) for k, v in freq.items()}
         return self

@@ -1,0 +1,211 @@
+#!/usr/bin/env python3
+"""The local engine against the Spark engine (local[2]) on a generated delivery.
+
+``python benchmarks/bench_spark.py --records 100000`` generates the delivery
+(seeded, invented data, :func:`generate.write_delivery`) unless it is already
+in ``--workdir``, ingests and normalizes it locally, writes the records as
+Parquet (:func:`linker.spark.write_records_parquet`), then links them both
+ways, each engine in a fresh process so that its peak memory is its own:
+
+local
+    :func:`linker.link.link_records` on the records read back from the Parquet.
+spark
+    :func:`linker.spark.link_records_spark` on the Parquet read by Spark
+    (``local[2]`` by default, ``--master``).
+
+Printed per engine: seconds per stage and in all, and peak memory -- the
+largest sum of resident memory over the engine's process tree (Python
+driver, Spark's JVM and its Python workers), sampled every 0.2 s.  Then
+whether the two agree: candidate pairs, the largest weight difference, the
+entities.  Needs ``pip install linker[spark]`` and Java.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "benchmarks"))
+
+
+class PeakMemory:
+    """Largest resident memory (MiB) of this process and all its descendants, sampled in a thread."""
+
+    def __init__(self, every: float = 0.2):
+        self.every, self.peak, self._stop = every, 0.0, threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    @staticmethod
+    def _tree_rss(root: int) -> float:
+        children: dict[int, list[int]] = {}
+        rss: dict[int, int] = {}
+        for entry in os.scandir("/proc"):
+            if not entry.name.isdigit():
+                continue
+            try:
+                with open(f"/proc/{entry.name}/stat") as fh:
+                    fields = fh.read().rsplit(")", 1)[1].split()
+                pid, ppid, pages = int(entry.name), int(fields[1]), int(fields[21])
+            except (OSError, IndexError, ValueError):
+                continue
+            children.setdefault(ppid, []).append(pid)
+            rss[pid] = pages
+        total, todo = 0, [root]
+        while todo:
+            p = todo.pop()
+            total += rss.get(p, 0)
+            todo += children.get(p, [])
+        return total * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+    def _run(self):
+        while not self._stop.is_set():
+            self.peak = max(self.peak, self._tree_rss(os.getpid()))
+            self._stop.wait(self.every)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, self._tree_rss(os.getpid()))
+
+
+def prepare(n_records: int, workdir: Path) -> dict:
+    """Generated delivery -> normalized records -> Parquet (once per size and workdir)."""
+    import generate
+    from linker import load_config
+    from linker.pipeline import ingest_delivery
+    from linker.records import normalize_records
+    from linker.spark import write_records_parquet
+
+    work = workdir / f"d{n_records}"
+    parquet = work / "records.parquet"
+    meta = work / "prepared.json"
+    if meta.exists():
+        return json.loads(meta.read_text())
+    cfg_path = generate.write_delivery(work, n_records)
+    cfg = load_config(cfg_path)
+    t0 = time.perf_counter()
+    raw = ingest_delivery(cfg)[0]
+    t1 = time.perf_counter()
+    records = normalize_records(raw, cfg).reset_index(drop=True)
+    t2 = time.perf_counter()
+    write_records_parquet(records, parquet)
+    t3 = time.perf_counter()
+    out = {"config": str(cfg_path), "parquet": str(parquet), "records": len(records),
+           "ingest_s": t1 - t0, "normalize_s": t2 - t1, "parquet_s": t3 - t2}
+    meta.write_text(json.dumps(out))
+    return out
+
+
+def link_once(engine: str, prep: dict, out: Path, master: str) -> dict:
+    """Link the Parquet records with one engine (in this process); save weights and labels."""
+    from linker import load_config
+    from linker.link import link_records
+
+    settings = load_config(prep["config"]).linkage
+    with PeakMemory() as mem:
+        t0 = time.perf_counter()
+        if engine == "local":
+            from linker.spark import read_records_pandas
+
+            records = read_records_pandas(prep["parquet"])
+            t_read = time.perf_counter() - t0
+            result = link_records(records, settings)
+            t_start = 0.0
+        else:
+            from linker.spark import link_records_spark, read_records, spark_session
+
+            spark = spark_session(master, {"spark.sql.shuffle.partitions": "8", "spark.driver.memory": "8g"})
+            t_start = time.perf_counter() - t0
+            t1 = time.perf_counter()
+            records = read_records(spark, prep["parquet"])
+            t_read = time.perf_counter() - t1
+            result = link_records_spark(spark, records, settings)
+        total = time.perf_counter() - t0
+        if engine == "spark":
+            spark.stop()
+    np.savez(out / f"{engine}.npz", left=result.scores["left"].to_numpy(), right=result.scores["right"].to_numpy(),
+             rules=result.scores["rules"].to_numpy(), weight=result.scores["weight"].to_numpy(),
+             labels=result.labels, levels=result.levels)
+    return {"engine": engine, "total_s": total, "session_s": t_start, "read_s": t_read,
+            "timings": result.info["timings"], "pairs": result.info["candidate_pairs"],
+            "entities": result.info["entities"], "peak_mib": mem.peak}
+
+
+WORKDIR = Path(tempfile.gettempdir()) / "linker-bench-spark"
+
+
+def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "local[2]") -> dict:
+    workdir = Path(workdir)
+    workdir.mkdir(parents=True, exist_ok=True)
+    t0 = time.perf_counter()
+    prep = prepare(n_records, workdir)
+    print(f"{prep['records']:,} normalized records (ingest {prep['ingest_s']:.1f} s, normalize "
+          f"{prep['normalize_s']:.1f} s, Parquet {prep['parquet_s']:.1f} s; prepared in "
+          f"{time.perf_counter() - t0:.1f} s)", flush=True)
+    out = Path(prep["parquet"]).parent
+    figures = {}
+    for engine in ("local", "spark"):
+        cmd = [sys.executable, __file__, "--engine", engine, "--prepared", json.dumps(prep), "--master", master]
+        done = subprocess.run(cmd, capture_output=True, text=True)
+        if done.returncode != 0:
+            raise RuntimeError(f"{engine} run failed:\n{done.stderr[-3000:]}")
+        figures[engine] = json.loads(done.stdout.strip().splitlines()[-1])
+        f = figures[engine]
+        print(f"{engine:>5}: {f['total_s']:.1f} s in all (session {f['session_s']:.1f} s, read {f['read_s']:.1f} s; "
+              f"stages {f['timings']}); {f['pairs']:,} candidate pairs, {f['entities']:,} entities; "
+              f"peak memory {f['peak_mib']:,.0f} MiB", flush=True)
+    a, b = np.load(out / "local.npz"), np.load(out / "spark.npz")
+    same_pairs = all(np.array_equal(a[k], b[k]) for k in ("left", "right", "rules"))
+    same_levels = np.array_equal(a["levels"], b["levels"])
+    diff = float(np.abs(a["weight"] - b["weight"]).max()) if same_pairs and a["weight"].size else float("nan")
+    same_labels = np.array_equal(a["labels"], b["labels"])
+    print(f"agree: pairs and rules {same_pairs}, levels {same_levels}, largest weight difference {diff:.3g}, "
+          f"entities {same_labels}")
+    return {"prepared": prep, **figures, "same_pairs": same_pairs, "same_levels": same_levels,
+            "weight_diff": diff, "same_labels": same_labels}
+
+
+@pytest.mark.bench
+def test_bench_spark():
+    """Local vs Spark local[2] on 100,000 generated records: figures printed, results must agree."""
+    pytest.importorskip("pyspark")
+    out = run(100_000)
+    assert out["same_pairs"] and out["same_levels"] and out["same_labels"]
+    assert out["weight_diff"] <= 1e-9
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--records", type=int, default=100_000)
+    ap.add_argument("--workdir", default=str(WORKDIR))
+    ap.add_argument("--master", default="local[2]")
+    ap.add_argument("--engine", choices=("local", "spark"), help=argparse.SUPPRESS)
+    ap.add_argument("--prepared", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.engine:                                  # one engine, in a fresh process (see run)
+        os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
+        prep = json.loads(args.prepared)
+        print(json.dumps(link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master)))
+        return 0
+    run(args.records, args.workdir, args.master)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
