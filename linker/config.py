@@ -305,6 +305,9 @@ def parse_config(doc: dict, source: str | Path = "<config>", base: str | Path = 
                 columns[owner] = v.vocabulary(cols, f"{where} columns.{owner}", PERSON_FIELDS)
             else:
                 v.fail(f"{where} columns.{owner}", f"unknown slot; use a slot name or 'generic'")
+        if "header_row" in rule and rule["header_row"] < 1:
+            v.fail(f"{where} header_row", f"must be a row number >= 1 (as the spreadsheet shows it), "
+                                          f"got {rule['header_row']}")
         sheets.append(SheetRule(
             file=rule.get("file", "*"), sheet=rule.get("sheet", "*"), slot=rule.get("slot"),
             slot_column=fold_header(rule["slot_column"]) if rule.get("slot_column") else None,

@@ -37,6 +37,7 @@ def test_headers_are_folded(project):
     ("\n[queries]\ngroup_by = \"agency\"\n", "[queries] group_by"),
     ("\n[rules]\nmax_parents = 0\n", "[rules]"),
     ("\n[[sheets]]\nfile = \"a\"\nfamily_column = 3\n", "[[sheets]] #1 family_column"),
+    ("\n[[sheets]]\nfile = \"a\"\nheader_row = 0\n", "[[sheets]] #1 header_row"),
 ])
 def test_unknown_keys_and_values_name_file_and_key(project, extra, key):
     """An unknown section, key, slot, value or field is an error naming the file and the key."""
