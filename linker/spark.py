@@ -76,8 +76,8 @@ from .link import (LinkageSettings, LinkResult, _unlinked, decision_positions, p
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
 __all__ = ["SparkUnavailable", "require_spark", "spark_session", "link_records_spark", "link_stage", "block_spark",
-           "compare_spark", "candidate_patterns", "fit_spark", "spark_components", "write_records_parquet", "read_records",
-           "read_records_pandas", "POSITION"]
+           "compare_spark", "candidate_patterns", "fit_spark", "spark_components", "write_records_parquet",
+           "read_records", "read_records_pandas", "POSITION"]
 
 POSITION = "pos"          # the position column of records handed to Spark (0..n-1, the local row order)
 INSTALL_HINT = "pip install linker[spark]"
@@ -528,7 +528,8 @@ class _WindowRule:
         self.rule, self.rec = rule, rec
         pos = rec.position
         col = names[(rule.columns[0], False)]
-        partitions = int(rec.spark.conf.get("spark.sql.shuffle.partitions", "4"))
+        partitions = max(int(rec.spark.conf.get("spark.sql.shuffle.partitions", "4")),
+                         int(rec.spark.sparkContext.defaultParallelism))
         s = keys.select(pos, F.col(col).alias("key")).where(F.col("key").isNotNull())
         # persisted: the pairs are built on the very partitioning the sizes were counted on
         self.sorted = s.repartitionByRange(partitions, "key", pos).sortWithinPartitions("key", pos) \
