@@ -211,17 +211,7 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
     scores["rules"] = pairs["rules"].to_numpy()
     scores["decision"] = np.where(p >= settings.link_at, "link",
                                   np.where(p >= settings.review_at, "review", "non-link"))
-    dec = decision_positions(records, decisions)
-    scores["reviewed"] = ""
-    if len(dec):
-        hit = scores[["left", "right"]].reset_index().merge(dec, on=["left", "right"])
-        scores.loc[hit["index"].to_numpy(), "reviewed"] = hit["decision"].to_numpy()
-        r = scores["reviewed"].to_numpy()
-        scores.loc[r == "same", "decision"] = "link"
-        scores.loc[r == "different", "decision"] = "non-link"
-        scores.loc[r == "unsure", "decision"] = "review"
-    must = dec.loc[dec["decision"] == "same", ["left", "right"]].to_numpy()
-    cannot = dec.loc[dec["decision"] == "different", ["left", "right"]].to_numpy()
+    dec, must, cannot = apply_reviews(scores, records, decisions)
     linked = scores["decision"].to_numpy() == "link"
     t0 = time.perf_counter()
     left, right = scores["left"].to_numpy(), scores["right"].to_numpy()
@@ -250,6 +240,23 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
         "timings": {k: round(v, 3) for k, v in t.items()},
     }
     return LinkResult(scores, levels, labels, model, fields, rules, report, capped, info)
+
+
+def apply_reviews(scores: pd.DataFrame, records: pd.DataFrame, decisions: pd.DataFrame | None):
+    """Reviewer decisions overrule the model's decision column of ``scores`` (in place; ``reviewed``
+    says which); returns the decisions by position and the must-link and cannot-link position pairs."""
+    dec = decision_positions(records, decisions)
+    scores["reviewed"] = ""
+    if len(dec):
+        hit = scores[["left", "right"]].reset_index().merge(dec, on=["left", "right"])
+        scores.loc[hit["index"].to_numpy(), "reviewed"] = hit["decision"].to_numpy()
+        r = scores["reviewed"].to_numpy()
+        scores.loc[r == "same", "decision"] = "link"
+        scores.loc[r == "different", "decision"] = "non-link"
+        scores.loc[r == "unsure", "decision"] = "review"
+    must = dec.loc[dec["decision"] == "same", ["left", "right"]].to_numpy()
+    cannot = dec.loc[dec["decision"] == "different", ["left", "right"]].to_numpy()
+    return dec, must, cannot
 
 
 def labelled_fit(result: LinkResult) -> pd.DataFrame:

@@ -71,7 +71,7 @@ from .cluster import constrained_entities, relabel_by_first
 from .compare import FieldComparison, compare, prepare_fields
 from .errors import LinkerError
 from .fingerprint import FINGERPRINT_FIELDS
-from .link import (LinkageSettings, LinkResult, _unlinked, decision_positions, person_fields, person_rules,
+from .link import (LinkageSettings, LinkResult, _unlinked, apply_reviews, person_fields, person_rules,
                    trusted_ids)
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
@@ -915,17 +915,7 @@ def link_records_spark(spark, records, settings: LinkageSettings = LinkageSettin
                                "probability": s["probability"].to_numpy(dtype=np.float64)})
         scores["rules"] = s["rules"].to_numpy(dtype=np.int64)
         scores["decision"] = s["decision"].to_numpy(dtype=object)
-        dec = decision_positions(frame, decisions)
-        scores["reviewed"] = ""
-        if len(dec):
-            hit = scores[["left", "right"]].reset_index().merge(dec, on=["left", "right"])
-            scores.loc[hit["index"].to_numpy(), "reviewed"] = hit["decision"].to_numpy()
-            r = scores["reviewed"].to_numpy()
-            scores.loc[r == "same", "decision"] = "link"
-            scores.loc[r == "different", "decision"] = "non-link"
-            scores.loc[r == "unsure", "decision"] = "review"
-        must = dec.loc[dec["decision"] == "same", ["left", "right"]].to_numpy()
-        cannot = dec.loc[dec["decision"] == "different", ["left", "right"]].to_numpy()
+        dec, must, cannot = apply_reviews(scores, frame, decisions)
         linked = scores["decision"].to_numpy() == "link"
         t0 = time.perf_counter()
         left, right = scores["left"].to_numpy(), scores["right"].to_numpy()
