@@ -115,10 +115,10 @@ def reference_frame(records: pd.DataFrame) -> pd.DataFrame:
     return frame.where(frame != "")
 
 
-def reference_run(records: pd.DataFrame, linked, true: np.ndarray, limit: int | None) -> dict:
+def reference_run(records: pd.DataFrame, linked, true: np.ndarray, limit: int | None, repeats: int = 3) -> dict:
     """recordlinkage's Compare + ECMClassifier on the same candidate pairs, and ours timed on the same pairs."""
     import recordlinkage
-    from linker.compare import compare
+    from linker.compare import compare, prepare_fields
 
     scores = linked.scores
     take = slice(0, limit) if limit else slice(None)
@@ -132,20 +132,29 @@ def reference_run(records: pd.DataFrame, linked, true: np.ndarray, limit: int | 
     cmp.string("family_name", "family_name", method="jarowinkler", threshold=0.85, label="family_name")
     cmp.exact("birth_date", "birth_date", label="birth_date")
     cmp.exact("sex", "sex", label="sex")
-    t0 = time.perf_counter()
-    vectors = cmp.compute(index, frame)
-    t_cmp = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    ecm = recordlinkage.ECMClassifier()
-    matches = ecm.fit_predict(vectors)
-    t_ecm = time.perf_counter() - t0
+    # each side timed as the best of ``repeats`` runs, alternating, in this process
+    t_cmp = t_ecm = t_ours = float("inf")
+    t_prep = t_lev = t_score = 0.0
+    pair_frame = pd.DataFrame({"left": left, "right": right})
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        vectors = cmp.compute(index, frame)
+        t1 = time.perf_counter()
+        matches = recordlinkage.ECMClassifier().fit_predict(vectors)
+        t2 = time.perf_counter()
+        t_cmp, t_ecm = min(t_cmp, t1 - t0), min(t_ecm, t2 - t1)
+        # ours on the same pairs: the field tables, comparison levels and match weights from the fitted model
+        t0 = time.perf_counter()
+        prepared = prepare_fields(records, linked.fields)
+        t1 = time.perf_counter()
+        levels = compare(records, (left, right), linked.fields, prepared=prepared)
+        t2 = time.perf_counter()
+        ours = linked.model.score(records, pair_frame, levels)
+        t3 = time.perf_counter()
+        if t3 - t0 < t_ours:                    # the parts of our best run
+            t_ours, t_prep, t_lev, t_score = t3 - t0, t1 - t0, t2 - t1, t3 - t2
     ref_link = np.zeros(left.size, dtype=bool)
     ref_link[index.get_indexer(matches)] = True
-    # ours on the same pairs: comparison levels and match weights from the fitted model
-    t0 = time.perf_counter()
-    levels = compare(records, (left, right), linked.fields)
-    ours = linked.model.score(records, pd.DataFrame({"left": left, "right": right}), levels)
-    t_ours = time.perf_counter() - t0
     our_link = ours["probability"].to_numpy() >= 0.9
     same = true[left] == true[right]
     known = pd.notna(true[left]) & pd.notna(true[right])
@@ -157,10 +166,12 @@ def reference_run(records: pd.DataFrame, linked, true: np.ndarray, limit: int | 
         return 2 * p * r / (p + r) if p + r else 0.0
 
     out = {"reference_pairs": int(left.size), "reference_compare_s": t_cmp, "reference_ecm_s": t_ecm,
-           "ours_compare_score_s": t_ours, "speed_ratio": (t_cmp + t_ecm) / t_ours,
+           "ours_compare_score_s": t_ours, "ours_prepare_s": t_prep, "ours_compare_s": t_lev, "ours_score_s": t_score,
+           "speed_ratio": (t_cmp + t_ecm) / t_ours,
            "reference_pair_f1": f1(ref_link), "ours_pair_f1": f1(our_link), "peak_mib_with_reference": peak_mib()}
-    print(f"  reference on {left.size:,} pairs: Compare {t_cmp:.1f} s + ECM {t_ecm:.1f} s; ours compare+score "
-          f"{t_ours:.2f} s: {out['speed_ratio']:.1f}x faster; pair-level F1 ours {out['ours_pair_f1']:.4f}, "
+    print(f"  reference on {left.size:,} pairs (best of {repeats}): Compare {t_cmp:.2f} s + ECM {t_ecm:.2f} s; "
+          f"ours {t_ours:.3f} s (field tables {t_prep:.3f} + compare {t_lev:.3f} + score {t_score:.3f}): "
+          f"{out['speed_ratio']:.1f}x faster; pair-level F1 ours {out['ours_pair_f1']:.4f}, "
           f"reference {out['reference_pair_f1']:.4f}", flush=True)
     return out
 

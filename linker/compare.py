@@ -55,6 +55,7 @@ leaves them out.
 
 from __future__ import annotations
 
+import operator
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass
@@ -265,11 +266,69 @@ def _osa(a, b) -> np.ndarray:
 # per-field value tables: record -> value code, code -> attributes
 # ---------------------------------------------------------------------------
 
-def _text(records: pd.DataFrame, col: str) -> np.ndarray:
-    """Column as an object array of stripped strings, "" for missing (cleaned once per distinct value)."""
+def column_codes(records: pd.DataFrame, col: str) -> tuple[np.ndarray, np.ndarray]:
+    """Per record an integer code of the column's stripped text (-1 for missing or blank), and the
+    distinct non-blank texts by code in first-seen order.
+
+    One hash factorization of the column; stripping and the merge of values
+    that differ only in surrounding blanks are done on the distinct values.
+    """
     codes, uniques = pd.factorize(records[col].reset_index(drop=True), use_na_sentinel=True)
-    clean = pd.Series(np.asarray(uniques, dtype=object)).astype(str).str.strip().to_numpy(dtype=object)
-    return np.append(clean, "")[codes]      # code -1 (missing) takes the appended ""
+    uniques = np.asarray(uniques, dtype=object)
+    clean = _strip_texts(uniques)
+    if clean is uniques or uniques.size == 0:    # already clean (normalized records): the distinct values stand
+        ccodes, cuniq = np.arange(uniques.size, dtype=np.int64), uniques
+    else:
+        if clean is None:
+            clean = pd.Series(uniques).astype(str).str.strip()
+        ccodes, cuniq = pd.factorize(clean)
+        cuniq = np.asarray(cuniq, dtype=object)
+    blank = np.flatnonzero(cuniq == "")
+    if blank.size:                   # drop "" from the distinct texts, renumber the codes after it
+        e = blank[0]
+        ccodes = np.where(ccodes == e, -1, np.where(ccodes > e, ccodes - 1, ccodes))
+        cuniq = np.delete(cuniq, e)
+    lut = np.append(ccodes.astype(np.int64), -1)       # code -1 (missing) stays -1
+    return lut[codes], cuniq
+
+
+def _strip_texts(values: np.ndarray) -> np.ndarray | None:
+    """The values stripped of surrounding whitespace when all are str (None otherwise);
+    ``values`` itself when none changed (str.strip returns the same object then)."""
+    if pd.api.types.infer_dtype(values, skipna=False) != "string":
+        return None
+    clean = [v.strip() for v in values]
+    if not any(map(operator.is_not, clean, values)):
+        return values
+    return np.asarray(clean, dtype=object)
+
+
+def _codes(records: pd.DataFrame, col: str | None, shared: dict | None) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`column_codes`, once per column within one :func:`prepare_fields` call (``shared``);
+    an absent column name gives all missing."""
+    if not col:
+        return np.full(len(records), -1, dtype=np.int64), np.zeros(0, dtype=object)
+    return _shared(shared, ("column", col), lambda: column_codes(records, col))
+
+
+def _shared(shared: dict | None, key: tuple, make):
+    """``make()``, computed once per key within one :func:`prepare_fields` call."""
+    if shared is None:
+        return make()
+    if key not in shared:
+        shared[key] = make()
+    return shared[key]
+
+
+def _merge_vocab(*coded: tuple[np.ndarray, np.ndarray]) -> tuple[list[np.ndarray], np.ndarray]:
+    """Codes of several columns recoded into one vocabulary (the union of their distinct texts)."""
+    codes, vocab = pd.factorize(np.concatenate([u for _, u in coded]) if coded else np.zeros(0, dtype=object))
+    out, start = [], 0
+    for c, u in coded:
+        lut = np.append(codes[start:start + u.size].astype(np.int64), -1)
+        out.append(lut[c])
+        start += u.size
+    return out, np.asarray(vocab, dtype=object)
 
 
 def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
@@ -279,26 +338,9 @@ def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
     s = records[col].reset_index(drop=True)
     if s.dtype == bool:
         return s.to_numpy()
-    txt = s.astype(object).where(s.notna(), "").astype(str).str.strip().str.lower()
-    return txt.isin(["true", "1", "yes", "y", "t"]).to_numpy()
-
-
-def _tuple_codes(parts: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """Factorize rows of several aligned object arrays; returns (codes, first row of each code)."""
-    return _row_codes(np.stack([_codes_blank(p)[0] for p in parts], axis=1))
-
-
-def _codes_blank(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Integer codes of strings in first-seen order, -1 for ""; and the distinct non-empty strings."""
-    codes, uniques = pd.factorize(pd.Series(values, dtype=object))
-    codes = codes.astype(np.int64)
-    uniques = np.asarray(uniques, dtype=object)
-    empty = np.flatnonzero(uniques == "")
-    if empty.size:
-        e = empty[0]
-        codes = np.where(codes == e, -1, np.where(codes > e, codes - 1, codes))
-        uniques = np.delete(uniques, e)
-    return codes, uniques
+    codes, uniques = column_codes(records, col)
+    yes = pd.Series(uniques, dtype=object).str.lower().isin(["true", "1", "yes", "y", "t"]).to_numpy()
+    return np.append(yes, False)[codes]
 
 
 def _row_codes(parts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -322,37 +364,33 @@ class _Table:
 
 
 def _prepare(records: pd.DataFrame, f: FieldComparison, shared: dict | None = None) -> _Table:
-    """The field's table; ``shared`` (one prepare_fields call) lets fields keyed on one column share its work."""
+    """The field's table; ``shared`` (one prepare_fields call) lets fields on the same columns share the work."""
     kind = f.kind
-    value = _text(records, f.columns[0])
     if kind == "reg_no":
-        value = np.where(_flag(records, f.flag_column), "", value).astype(object)
-        if f.status_column:
-            codes, uniques = _codes_blank(value)
-            if f.status_column not in records.columns:   # no status: every number counts as verified
-                return _Table(codes, {"value": uniques, "valid": np.ones(uniques.size, dtype=bool)})
-            valid = np.zeros(uniques.size, dtype=bool)
-            seen = codes >= 0
-            status = _text(records, f.status_column)
-            valid[codes[seen]] = status[seen] == "valid"   # status is a function of the value
-            return _Table(codes, {"value": uniques, "valid": valid})
+        codes, uniques = _codes(records, f.columns[0], shared)
+        if f.flag_column:                       # a number flagged as shared by several persons compares as missing
+            codes = np.where(_flag(records, f.flag_column), -1, codes)
+        if not f.status_column:
+            return _Table(codes, {"value": uniques})
+        if f.status_column not in records.columns:   # no status: every number counts as verified
+            return _Table(codes, {"value": uniques, "valid": np.ones(uniques.size, dtype=bool)})
+        scodes, suniq = _codes(records, f.status_column, shared)
+        is_valid = np.append(suniq == "valid", False)[scodes]
+        valid = np.zeros(uniques.size, dtype=bool)
+        seen = codes >= 0
+        valid[codes[seen]] = is_valid[seen]     # status is a function of the value
+        return _Table(codes, {"value": uniques, "valid": valid})
     if kind == "name":
-        n = len(records)
-        other = _text(records, f.swap_column) if f.swap_column else np.full(n, "", dtype=object)
-        key = _text(records, f.key_column) if f.key_column and f.key_column not in (shared or {}) \
-            else np.full(n, "", dtype=object)
-        phon = _text(records, f.phonetic_column) if f.phonetic_column else np.full(n, "", dtype=object)
         # value and other name part share one vocabulary so that given <-> family can be compared as codes
-        vo, vocab = _codes_blank(np.concatenate([value, other]))
-        vcode, ocode = vo[:n], vo[n:]
-        if shared is not None and f.key_column in shared:      # another name field keys on the same column
-            kcode, kvocab, ktok = shared[f.key_column]
+        if f.swap_column:
+            (vcode, ocode), vocab = _merge_vocab(_codes(records, f.columns[0], shared),
+                                                 _codes(records, f.swap_column, shared))
         else:
-            kcode, kvocab = _codes_blank(key)
-            ktok = _token_codes(kvocab)
-            if shared is not None and f.key_column:
-                shared[f.key_column] = (kcode, kvocab, ktok)
-        pcode, _ = _codes_blank(phon)
+            (vcode,), vocab = _merge_vocab(_codes(records, f.columns[0], shared))
+            ocode = np.full(len(records), -1, dtype=np.int64)
+        kcode, kvocab = _codes(records, f.key_column, shared)
+        ktok = _shared(shared, ("tokens", f.key_column), lambda: _token_codes(kvocab))
+        pcode, _ = _codes(records, f.phonetic_column, shared)
         parts = np.stack([vcode, ocode, kcode, pcode], axis=1)
         tuples, first = _row_codes(parts)
         codes = np.where(vcode < 0, -1, tuples)
@@ -360,35 +398,37 @@ def _prepare(records: pd.DataFrame, f: FieldComparison, shared: dict | None = No
         return _Table(codes, {"vcode": at[:, 0], "ocode": at[:, 1], "kcode": at[:, 2], "pcode": at[:, 3],
                               "vocab": vocab, "kvocab": kvocab, "ktokens": ktok[0], "kntok": ktok[1]})
     if kind == "date":
-        lo = _text(records, f.range_columns[0]) if f.range_columns else np.full(len(records), "", dtype=object)
-        hi = _text(records, f.range_columns[1]) if f.range_columns else np.full(len(records), "", dtype=object)
-        codes, first = _tuple_codes([value, lo, hi])
-        d, a, b = value[first], lo[first], hi[first]
+        cols = [f.columns[0], *(f.range_columns or (None, None))]
+        coded = [_codes(records, c, shared) for c in cols]
+        codes, first = _row_codes(np.stack([c for c, _ in coded], axis=1))
+        d, a, b = (np.append(u, "")[c[first]] for c, u in coded)
         attrs = _date_attrs(d, a, b)
         missing_code = ~attrs["has_date"] & ~attrs["has_range"]
         codes = np.where(missing_code[codes], -1, codes)
         return _Table(codes, attrs)
     # single-value kinds
-    codes, uniques = _codes_blank(value)
+    codes, uniques = _codes(records, f.columns[0], shared)
     return _Table(codes, {"value": uniques})
 
 
-def _day_number(text: np.ndarray) -> np.ndarray:
-    """ISO date strings to day numbers (float, NaN when not a valid date)."""
-    dt = pd.to_datetime(pd.Series(text, dtype=object), format="%Y-%m-%d", errors="coerce")
-    days = (dt - pd.Timestamp("1970-01-01")).dt.days
-    return days.to_numpy(dtype=np.float64, na_value=np.nan)
+def _dates(text: np.ndarray) -> pd.Series:
+    """ISO date strings to datetimes (NaT when not a valid date)."""
+    return pd.to_datetime(pd.Series(text, dtype=object), format="%Y-%m-%d", errors="coerce")
+
+
+def _day_number(dt: pd.Series) -> np.ndarray:
+    """Datetimes to day numbers since 1970-01-01 (float, NaN for NaT)."""
+    return ((dt - pd.Timestamp("1970-01-01")).dt.days).to_numpy(dtype=np.float64, na_value=np.nan)
 
 
 def _date_attrs(d: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> dict[str, np.ndarray]:
-    day = _day_number(d)
+    dt = _dates(d)
+    day = _day_number(dt)
     has_date = ~np.isnan(day)
-    ymd = pd.Series(d, dtype=object).str.extract(r"^(\d{4})-(\d{2})-(\d{2})$")
-    ymd = ymd.astype(float).to_numpy()
-    ymd[~has_date] = np.nan
-    rlo, rhi = _day_number(lo), _day_number(hi)
+    y, m, dd = (getattr(dt.dt, part).to_numpy(dtype=np.float64, na_value=np.nan) for part in ("year", "month", "day"))
+    rlo, rhi = _day_number(_dates(lo)), _day_number(_dates(hi))
     has_range = ~np.isnan(rlo) & ~np.isnan(rhi)
-    return {"day": day, "y": ymd[:, 0], "m": ymd[:, 1], "d": ymd[:, 2], "has_date": has_date,
+    return {"day": day, "y": y, "m": m, "d": dd, "has_date": has_date,
             "rlo": rlo, "rhi": rhi, "has_range": has_range}
 
 
@@ -429,14 +469,20 @@ def _score_exact(t: _Table, f, a, b):
 
 def _token_codes(values: np.ndarray, max_tokens: int = 6) -> tuple[np.ndarray, np.ndarray]:
     """Per value: a (n, T) matrix of token codes (-1 = no token) and the token count
-    (tokens are the whitespace-separated words; one flat factorization of all tokens)."""
+    (tokens are the distinct whitespace-separated words, in order; one flat factorization of all tokens)."""
     split = [v.split() if isinstance(v, str) else [] for v in values]
     counts = np.fromiter(map(len, split), dtype=np.int64, count=len(split))
     mat = np.full((len(split), max_tokens), -1, dtype=np.int64)
-    if counts.sum() == 0:
+    total = int(counts.sum())
+    if total == 0:
         return mat, counts
-    codes = pd.factorize(np.fromiter(chain.from_iterable(split), dtype=object, count=int(counts.sum())))[0]
+    codes = pd.factorize(np.fromiter(chain.from_iterable(split), dtype=object, count=total))[0].astype(np.int64)
     owner = np.repeat(np.arange(len(split)), counts)
+    if total > len(split):          # drop a word repeated within one value (keep its first place)
+        first = np.zeros(total, dtype=bool)
+        first[np.unique(owner * (int(codes.max()) + 1) + codes, return_index=True)[1]] = True
+        owner, codes = owner[first], codes[first]
+        counts = np.bincount(owner, minlength=len(split))
     pos = np.arange(owner.size) - np.repeat(np.cumsum(counts) - counts, counts)
     keep = pos < max_tokens
     mat[owner[keep], pos[keep]] = codes[keep]
@@ -448,10 +494,9 @@ def _jw_codes(vocab: np.ndarray, ca: np.ndarray, cb: np.ndarray) -> np.ndarray:
     if ca.size == 0:
         return np.zeros(0, dtype=np.float64)
     width = np.int64(max(vocab.size, 1))
-    key = np.minimum(ca, cb) * width + np.maximum(ca, cb)
-    uniq = _unique(key)
+    inverse, uniq = pd.factorize(np.minimum(ca, cb) * width + np.maximum(ca, cb))
     sim = jaro_winkler(vocab[uniq // width], vocab[uniq % width])
-    return sim[np.searchsorted(uniq, key)]
+    return sim[inverse]
 
 
 def _key_subset(at: dict, ka: np.ndarray, kb: np.ndarray) -> np.ndarray:
@@ -464,19 +509,46 @@ def _key_subset(at: dict, ka: np.ndarray, kb: np.ndarray) -> np.ndarray:
     idx = np.flatnonzero((ka >= 0) & (kb >= 0) & (ka != kb))
     if idx.size == 0:
         return out
-    if "ktokens" not in at:
-        at["ktokens"], at["kntok"] = _token_codes(at["kvocab"])
-    tok, ntok = at["ktokens"], at["kntok"]
     width = np.int64(max(at["kvocab"].size, 1))
-    key = np.minimum(ka[idx], kb[idx]) * width + np.maximum(ka[idx], kb[idx])
-    uniq = _unique(key)
+    inverse, uniq = pd.factorize(np.minimum(ka[idx], kb[idx]) * width + np.maximum(ka[idx], kb[idx]))
     x, y = uniq // width, uniq % width
-    tx, ty = tok[x], tok[y]
-    in_y = ((tx[:, :, None] == ty[:, None, :]) | (tx[:, :, None] < 0)).any(axis=2).all(axis=1)
-    in_x = ((ty[:, :, None] == tx[:, None, :]) | (ty[:, :, None] < 0)).any(axis=2).all(axis=1)
-    hit = (in_y & (ntok[x] >= 2)) | (in_x & (ntok[y] >= 2))
-    out[idx] = hit[np.searchsorted(uniq, key)]
+    tok, ntok = at["ktokens"], at["kntok"]
+    hit = _holds_tokens(tok, ntok, x, y) | _holds_tokens(tok, ntok, y, x)
+    out[idx] = hit[inverse]
     return out
+
+
+def _holds_tokens(tok: np.ndarray, ntok: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Per pair: key ``y`` holds every token of key ``x``, and ``x`` has at least two
+    (tested only where ``x`` has no more tokens than ``y``, on as many token columns as needed)."""
+    out = np.zeros(x.size, dtype=bool)
+    nx, ny = ntok[x], ntok[y]
+    idx = np.flatnonzero((nx >= 2) & (nx <= ny))
+    if idx.size == 0:
+        return out
+    wx = int(min(nx[idx].max(), tok.shape[1]))
+    wy = int(min(ny[idx].max(), tok.shape[1]))
+    tx, ty = tok[x[idx], :wx], tok[y[idx], :wy]
+    found = (tx[:, :, None] == ty[:, None, :]).any(axis=2) | (tx < 0)
+    out[idx] = found.all(axis=1)
+    return out
+
+
+def _share_token(vocab: np.ndarray, xa: np.ndarray, xb: np.ndarray) -> np.ndarray:
+    """Per pair of vocabulary codes: the two values share a word, one of them having several
+    (tokens taken only of the values these pairs involve)."""
+    part = np.zeros(xa.size, dtype=bool)
+    if xa.size == 0:
+        return part
+    inverse, involved = pd.factorize(np.concatenate([xa, xb]))
+    tok, ntok = _token_codes(vocab[involved])
+    ia, ib = inverse[:xa.size], inverse[xa.size:]
+    multi = np.flatnonzero((ntok[ia] > 1) | (ntok[ib] > 1))
+    if multi.size:
+        w = int(max(ntok[ia[multi]].max(), ntok[ib[multi]].max(), 1))
+        ta, tb = tok[ia[multi], :w], tok[ib[multi], :w]
+        part[multi] = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
+    return part
 
 
 def _score_name(t: _Table, f, a, b):
@@ -499,14 +571,7 @@ def _score_name(t: _Table, f, a, b):
     rest, jw = take(level, high), jw[~high]
     if f.parts:
         level += 1
-        part = np.zeros(rest.size, dtype=bool)
-        if "tokens" not in at:
-            at["tokens"], at["ntok"] = _token_codes(at["vocab"])
-        xa, xb = va[rest], vb[rest]
-        multi = np.flatnonzero((at["ntok"][xa] > 1) | (at["ntok"][xb] > 1))
-        if multi.size:
-            ta, tb = at["tokens"][xa[multi]], at["tokens"][xb[multi]]
-            part[multi] = ((ta[:, :, None] == tb[:, None, :]) & (ta[:, :, None] >= 0)).any(axis=(1, 2))
+        part = _share_token(at["vocab"], va[rest], vb[rest])
         rest, jw = take(level, part), jw[~part]
     level += 1
     rest = take(level, jw >= f.medium)

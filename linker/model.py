@@ -80,7 +80,8 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
-from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, _unique, compare, field_from_dict, field_to_dict
+from .compare import (DEFAULT_PERSON_FIELDS, FieldComparison, _unique, column_codes, compare, field_from_dict,
+                      field_to_dict)
 
 __all__ = ["Guard", "FellegiSunter", "DEFAULT_PERSON_GUARDS", "em_fit", "em_fit_relatives", "pattern_counts",
            "random_pairs", "NotFittedError"]
@@ -526,9 +527,9 @@ class FellegiSunter:
         by_name = {f.name: f for f in self.fields}
         out = {}
         for name in self._tf_names():
-            vals = records[by_name[name].columns[0]].reset_index(drop=True)
-            vals = vals.astype(object).where(vals.notna(), "").astype(str).str.strip()
-            out[name] = vals[vals != ""].value_counts(sort=False)
+            codes, uniques = column_codes(records, by_name[name].columns[0])
+            counts = np.bincount(codes[codes >= 0], minlength=uniques.size)
+            out[name] = pd.Series(counts, index=pd.Index(uniques, dtype=object), dtype=np.int64)
         return out
 
     def fit_counts(self, n_records: int, cand_patterns, cand_counts, random_level_counts, other_patterns,
@@ -661,38 +662,46 @@ class FellegiSunter:
     def _prior_weight(self) -> float:
         return math.log2(self.prior_) - math.log2(1.0 - self.prior_)
 
-    def _tf_record_weights(self, records: pd.DataFrame) -> dict[int, np.ndarray]:
-        """Per tf field (by column index): per record the exact-agreement weight (NaN = use level weight)."""
+    def record_weights(self, records: pd.DataFrame) -> dict[str, np.ndarray]:
+        """Per term-frequency field (by name): per record its value's exact-agreement weight
+        (NaN where the value was not seen in fitting: the level weight applies).
+
+        What scoring needs of the records' values; computed once per record
+        table and handed to :meth:`score` (``record_weights=``) when the same
+        records are scored in several batches.
+        """
+        self._check_fitted()
         out = {}
-        for j, f in enumerate(self.fields):
+        for f in self.fields:
             table = getattr(self, "tf_", {}).get(f.name)
             if not table:
                 continue
             exact = f.level("exact")
-            # once per distinct value: factorize, look the cleaned values up, broadcast back
-            codes, uniques = pd.factorize(records[f.columns[0]].reset_index(drop=True))
-            clean = pd.Index(np.asarray(uniques, dtype=object)).astype(str).str.strip()
-            per_value = pd.Series(table, dtype=np.float64).reindex(clean).to_numpy(dtype=np.float64)
-            freq = np.append(per_value, np.nan)[codes]
-            w = _log2(self.m_[f.name][exact]) - _log2(freq)
+            # once per distinct value: the stripped texts looked up in the fitted frequencies
+            codes, uniques = column_codes(records, f.columns[0])
+            known = pd.Index(list(table.keys()), dtype=object)
+            where = known.get_indexer(uniques)
+            freq = np.fromiter(table.values(), dtype=np.float64, count=len(table))
+            per_value = np.where(where >= 0, freq[np.maximum(where, 0)], np.nan) if where.size else where.astype(float)
+            w = _log2(self.m_[f.name][exact]) - _log2(np.append(per_value, np.nan)[codes])
             if self.clamp_agreement:
                 w = np.where(w < 0, 0.0, w)
-            out[j] = w
+            out[f.name] = w
         return out
 
-    def _field_weights(self, records, left, right, levels):
-        """(n_pairs, n_fields) weights with term-frequency adjustment."""
-        W = np.zeros(levels.shape, dtype=np.float64)
+    def _field_weights(self, records, left, right, levels, record_weights: dict | None = None):
+        """(n_pairs, n_fields) weights with term-frequency adjustment (column-major: one field at a time)."""
+        if record_weights is None:
+            record_weights = self.record_weights(records)
+        W = np.empty(levels.shape, dtype=np.float64, order="F")
         for j, f in enumerate(self.fields):
-            W[:, j] = self.weights_[f.name][levels[:, j].astype(np.int64)]
-        for j, rec_w in self._tf_record_weights(records).items():
-            f = self.fields[j]
-            hit = levels[:, j] == f.level("exact")
-            tw = rec_w[left[hit]]
-            ok = ~np.isnan(tw)
-            col = W[:, j]
-            idx = np.flatnonzero(hit)[ok]
-            col[idx] = tw[ok]
+            col = self.weights_[f.name][levels[:, j]]
+            rec_w = record_weights.get(f.name)
+            if rec_w is not None:
+                idx = np.flatnonzero(levels[:, j] == f.level("exact"))
+                tw = rec_w[left[idx]]
+                ok = ~np.isnan(tw)
+                col[idx[ok]] = tw[ok]
             W[:, j] = col
         return W
 
@@ -704,8 +713,9 @@ class FellegiSunter:
         current = total.copy()
         for g_i, g in enumerate(self.guards):
             f = self.fields[idx[g.field]]
-            codes = [f.level(lv) for lv in g.levels]
-            hit = np.isin(levels[:, idx[g.field]], codes)
+            on = np.zeros(len(f.levels), dtype=bool)
+            on[[f.level(lv) for lv in g.levels]] = True
+            hit = on[levels[:, idx[g.field]]]
             for fname, lv in g.unless:
                 hit &= levels[:, idx[fname]] != self.fields[idx[fname]].level(lv)
             hit &= current > g.cap
@@ -726,21 +736,29 @@ class FellegiSunter:
                              f"{left.size} pairs x {len(self.fields)} fields")
         return left, right, levels
 
-    def match_weight(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None):
-        """log2 Bayes factor sum plus prior log-odds (guards applied), per pair."""
+    def match_weight(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None,
+                     record_weights: dict | None = None):
+        """log2 Bayes factor sum plus prior log-odds (guards applied), per pair.
+
+        ``record_weights``: :meth:`record_weights` of ``records`` (computed when None).
+        """
         self._check_fitted()
         left, right, levels = self._levels_for(records, pairs, levels)
-        total = self._field_weights(records, left, right, levels).sum(axis=1) + self._prior_weight()
+        total = self._field_weights(records, left, right, levels, record_weights).sum(axis=1) + self._prior_weight()
         adj, _ = self._guard_adjustment(levels, total)
         return total + adj
 
-    def match_probability(self, records, pairs, levels=None):
+    def match_probability(self, records, pairs, levels=None, record_weights: dict | None = None):
         """Posterior match probability per pair, 1 / (1 + 2**-weight)."""
-        return expit(self.match_weight(records, pairs, levels) * math.log(2.0))
+        return expit(self.match_weight(records, pairs, levels, record_weights) * math.log(2.0))
 
-    def score(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None) -> pd.DataFrame:
-        """Frame of ``left``, ``right``, ``weight``, ``probability`` per pair."""
-        w = self.match_weight(records, pairs, levels)
+    def score(self, records: pd.DataFrame, pairs: pd.DataFrame, levels: np.ndarray | None = None,
+              record_weights: dict | None = None) -> pd.DataFrame:
+        """Frame of ``left``, ``right``, ``weight``, ``probability`` per pair.
+
+        ``record_weights``: :meth:`record_weights` of ``records`` (computed when None).
+        """
+        w = self.match_weight(records, pairs, levels, record_weights)
         return pd.DataFrame({"left": pairs["left"].to_numpy(dtype=np.int64),
                              "right": pairs["right"].to_numpy(dtype=np.int64),
                              "weight": w, "probability": expit(w * math.log(2.0))})
@@ -755,14 +773,14 @@ class FellegiSunter:
         self._check_fitted()
         pair = pd.DataFrame({"left": [int(i)], "right": [int(j)]})
         left, right, levels = self._levels_for(records, pair, None)
-        W = self._field_weights(records, left, right, levels)[0]
-        tfw = self._tf_record_weights(records)
+        tfw = self.record_weights(records)
+        W = self._field_weights(records, left, right, levels, tfw)[0]
         rows = [{"field": "(prior)", "level": "", "m": np.nan, "u": np.nan, "weight": self._prior_weight(),
                  "tf": False}]
         for k, f in enumerate(self.fields):
             lv = int(levels[0, k])
             m, u = self.m_[f.name][lv], self.u_[f.name][lv]
-            tf = bool(k in tfw and lv == f.level("exact") and not np.isnan(tfw[k][left[0]]))
+            tf = bool(f.name in tfw and lv == f.level("exact") and not np.isnan(tfw[f.name][left[0]]))
             if tf:
                 u = self.tf_[f.name][str(records[f.columns[0]].iloc[left[0]]).strip()]
             rows.append({"field": f.name, "level": f.levels[lv], "m": float(m) if lv else np.nan,
