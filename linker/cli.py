@@ -16,7 +16,7 @@ from . import __version__
 from .config import load_config
 from .errors import InputError, LinkerError
 from .evaluate import evaluate_entities, read_truth
-from .link import explain_pair
+from .link import explain_pair, link_records
 from .pipeline import (_quiet, import_decisions, read_model, read_records, rebuild_report, remember_run,
                        run_pipeline,
                        stderr_progress, store_inputs, write_outputs)
@@ -145,10 +145,10 @@ def _dispatch(args) -> int:
         store = open_store(store_path) if store_path else None
         try:
             decisions, history = store_inputs(store) if store else (None, None)
-            with _linkage_engine(args, cfg, progress):
+            with _linkage_engine(args, cfg, progress) as link:
                 result = run_pipeline(cfg, progress=progress,
                                       skip_unreadable=True if args.skip_unreadable else None, truth=truth,
-                                      decisions=decisions, history=history)
+                                      decisions=decisions, history=history, link=link)
             written = write_outputs(result, args.out, mode=0o640 if args.group_readable else 0o600)
             if store:
                 remember_run(store, result)
@@ -191,22 +191,19 @@ class UsageError(LinkerError):
 
 @contextlib.contextmanager
 def _linkage_engine(args, cfg, progress):
-    """Run the linkage stage of this run on the engine ``--engine`` names.
+    """The linkage stage of this run on the engine ``--engine`` names (handed to ``run_pipeline(link=...)``).
 
-    ``local``: nothing changes.  ``spark``: pyspark is checked first (a clear
-    error naming ``pip install linker[spark]`` when it is missing), a session
-    is started (master from ``--spark-master``, else ``[spark] master``, else
-    local[2]; ``[spark] conf`` settings) and stopped afterwards if this run
-    started it.  ``run_pipeline`` takes no engine argument, so for this one
-    call its linkage step (``link_records``) is swapped for the Spark stage,
-    which returns the same result, and put back on the way out.
+    ``local``: :func:`linker.link.link_records`.  ``spark``: pyspark is checked
+    first (a clear error naming ``pip install linker[spark]`` when it is
+    missing), a session is started (master from ``--spark-master``, else
+    ``[spark] master``, else local[2]; ``[spark] conf`` settings) and stopped
+    afterwards if this run started it.
     """
     if args.engine != "spark":
         if args.spark_master:
             raise UsageError("--spark-master applies to --engine spark only")
-        yield
+        yield link_records
         return
-    from . import pipeline
     from .spark import link_stage, require_spark, spark_session
 
     require_spark()
@@ -216,12 +213,9 @@ def _linkage_engine(args, cfg, progress):
     running = SparkSession.getActiveSession()
     progress(f"starting Spark ({master})")
     spark = spark_session(master, cfg.spark.get("conf") or None)
-    original = pipeline.link_records
-    pipeline.link_records = link_stage(spark)
     try:
-        yield
+        yield link_stage(spark)
     finally:
-        pipeline.link_records = original
         if running is None:
             spark.stop()
 

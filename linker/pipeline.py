@@ -34,7 +34,7 @@ from .fingerprint import record_fingerprints
 from .store import Store, assign_entity_ids, changes_table, open_store, snapshot_of
 from .relations import family_claims, family_values, relations_table
 from .link import labelled_fit, unattached_decisions
-from .link import blocking_report, entities_table, entity_ids, link_records, pairs_table
+from .link import LinkResult, blocking_report, entities_table, entity_ids, link_records, pairs_table
 from .records import normalize_records
 from .schema import CLAIM_COLUMNS, FILE_COLUMNS, LEDGER_COLUMNS, OUTCOME_FILE_SKIPPED
 
@@ -111,8 +111,14 @@ def ingest_delivery(cfg: LinkConfig, progress: Progress = _quiet, skip_unreadabl
 
 def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
                  skip_unreadable: bool | None = None, truth: pd.DataFrame | None = None,
-                 decisions: pd.DataFrame | None = None, history: dict | None = None) -> RunResult:
+                 decisions: pd.DataFrame | None = None, history: dict | None = None,
+                 link: Callable[..., LinkResult] = link_records) -> RunResult:
     """Run every stage on the delivery the config names and return the frames.
+
+    ``link`` is the linkage stage, called as ``link(records, settings,
+    progress, decisions=...)`` and returning a :class:`~linker.link.LinkResult`:
+    :func:`linker.link.link_records` (the local engine) by default, or the
+    Spark engine's (:func:`linker.spark.link_stage`); every other stage runs here.
 
     ``decisions`` (reviewer decisions by fingerprint: pair_id, fp_a, fp_b,
     decision, ...) overrule the model; ``history`` ({"previous": the last run's
@@ -143,7 +149,7 @@ def run_pipeline(cfg: LinkConfig, progress: Progress = _quiet,
     ledger = ledger.reset_index(drop=True)
     records = records.reset_index(drop=True)
     t2 = time.perf_counter()
-    linked = link_records(records, cfg.linkage, progress, decisions=decisions)
+    linked = link(records, cfg.linkage, progress, decisions=decisions)
     if history is None:
         records.insert(1, "entity_id", entity_ids(linked.labels))
     else:

@@ -160,3 +160,23 @@ def test_the_memory_budget_sets_the_chunk_size_not_the_result():
     assert (compare(rec, pairs, fields, chunk_size=7, workers=1) == whole).all()
     with pytest.raises(ValueError, match="memory_mb"):
         LinkageSettings(memory_mb=8)
+
+
+def test_run_pipeline_takes_the_linkage_stage_as_a_parameter(demo):
+    """``run_pipeline(link=...)`` calls the stage it is given (as the Spark engine is handed in) with the
+    normalized records and the config's settings, and builds every output from its result."""
+    from linker.link import link_records
+
+    res, _ = demo
+    seen = []
+
+    def stage(records, settings, progress, decisions=None):
+        seen.append((len(records), settings, decisions))
+        return link_records(records, settings, progress, decisions=decisions)
+
+    cfg = load_config(ROOT / "configs" / "sample.toml")
+    again = run_pipeline(cfg, link=stage)
+    assert seen == [(len(res.records), cfg.linkage, None)]
+    pd.testing.assert_frame_equal(again.records, res.records)
+    for name in ("pairs.csv", "entities.csv", "findings.csv"):
+        pd.testing.assert_frame_equal(again.extra[name], res.extra[name])

@@ -262,14 +262,24 @@ def test_parquet_round_trip_of_the_demo_records(spark, demo, tmp_path):
 
 
 @needs_spark
-def test_cli_run_with_the_spark_engine_writes_the_local_outputs(spark, tmp_path):
-    """`linker run --engine spark` (on the running session) writes what the local engine writes."""
+def test_cli_run_with_the_spark_engine_writes_the_local_outputs(spark, tmp_path, monkeypatch):
+    """`linker run --engine spark` (on the running session) links on Spark and writes what the local engine writes."""
+    import linker.spark as spark_module
+
+    calls = []
+    original = spark_module.link_records_spark
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(spark_module, "link_records_spark", counted)
     cfg = str(ROOT / "configs" / "sample.toml")
     assert main(["run", cfg, "--out", str(tmp_path / "local"), "--quiet"]) == 0
+    assert calls == []
     assert main(["run", cfg, "--out", str(tmp_path / "spark"), "--quiet", "--engine", "spark",
                  "--spark-master", "local[2]"]) == 0
-    from linker import pipeline
-    assert pipeline.link_records is link_records          # the local stage is back in place
+    assert calls == [1]                                   # the linkage stage ran on Spark, once
     for name in ("records.csv", "pairs.csv", "entities.csv", "blocking.csv", "findings.csv"):
         assert (tmp_path / "spark" / name).read_bytes() == (tmp_path / "local" / name).read_bytes(), name
 
