@@ -25,14 +25,17 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import subprocess
 import sys
 import tempfile
 import threading
 import time
 from pathlib import Path
+from typing import Sequence
 
 import numpy as np
+import pandas as pd
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -43,8 +46,9 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 class PeakMemory:
     """Largest resident memory (MiB) of this process and all its descendants, sampled in a thread."""
 
-    def __init__(self, every: float = 0.2):
+    def __init__(self, every: float = 0.2, limit_mib: float | None = None, on_limit=None):
         self.every, self.peak, self._stop = every, 0.0, threading.Event()
+        self.limit_mib, self.on_limit = limit_mib, on_limit
         self._thread = threading.Thread(target=self._run, daemon=True)
 
     @staticmethod
@@ -72,6 +76,8 @@ class PeakMemory:
     def _run(self):
         while not self._stop.is_set():
             self.peak = max(self.peak, self._tree_rss(os.getpid()))
+            if self.limit_mib and self.peak > self.limit_mib and self.on_limit:
+                self.on_limit(self.peak)
             self._stop.wait(self.every)
 
     def __enter__(self):
@@ -84,7 +90,7 @@ class PeakMemory:
         self.peak = max(self.peak, self._tree_rss(os.getpid()))
 
 
-def prepare(n_records: int, workdir: Path) -> dict:
+def prepare(n_records: int, workdir: Path, by_file_above: int = 2_000_000) -> dict:
     """Generated delivery -> normalized records -> Parquet (once per size and workdir)."""
     import generate
     from linker import load_config
@@ -99,43 +105,98 @@ def prepare(n_records: int, workdir: Path) -> dict:
         return json.loads(meta.read_text())
     cfg_path = generate.write_delivery(work, n_records)
     cfg = load_config(cfg_path)
-    t0 = time.perf_counter()
-    raw = ingest_delivery(cfg)[0]
-    t1 = time.perf_counter()
-    records = normalize_records(raw, cfg).reset_index(drop=True)
-    t2 = time.perf_counter()
-    write_records_parquet(records, parquet)
-    t3 = time.perf_counter()
-    out = {"config": str(cfg_path), "parquet": str(parquet), "records": len(records),
-           "ingest_s": t1 - t0, "normalize_s": t2 - t1, "parquet_s": t3 - t2}
+    if n_records > by_file_above:
+        out = _prepare_by_file(cfg, parquet)
+    else:
+        t0 = time.perf_counter()
+        raw = ingest_delivery(cfg)[0]
+        t1 = time.perf_counter()
+        records = normalize_records(raw, cfg).reset_index(drop=True)
+        t2 = time.perf_counter()
+        write_records_parquet(records, parquet)
+        t3 = time.perf_counter()
+        out = {"records": len(records), "ingest_s": t1 - t0, "normalize_s": t2 - t1, "parquet_s": t3 - t2}
+    out.update({"config": str(cfg_path), "parquet": str(parquet)})
     meta.write_text(json.dumps(out))
     return out
 
 
-def link_once(engine: str, prep: dict, out: Path, master: str) -> dict:
-    """Link the Parquet records with one engine (in this process); save weights and labels."""
+def _prepare_by_file(cfg, parquet: Path) -> dict:
+    """Ingest, normalize and write the delivery one file at a time (memory of one file, not of all):
+    the records and their order are those of the whole-delivery path (normalization is per record)."""
+    from linker.ingest import ingest_file
+    from linker.io import list_delivery, read_file
+    from linker.records import normalize_records
+    from linker.spark import write_records_parquet
+
+    t = {"ingest_s": 0.0, "normalize_s": 0.0, "parquet_s": 0.0}
+    start = 0
+    for path in list_delivery(cfg.folder, cfg.patterns, cfg.exclude):
+        t0 = time.perf_counter()
+        data = read_file(path, cfg.folder)
+        raws = [res.records for res in ingest_file(cfg, data)]
+        del data
+        raw = pd.concat(raws, ignore_index=True)
+        t1 = time.perf_counter()
+        records = normalize_records(raw, cfg).reset_index(drop=True)
+        del raw, raws
+        t2 = time.perf_counter()
+        write_records_parquet(records, parquet, start=start)
+        t3 = time.perf_counter()
+        start += len(records)
+        t["ingest_s"] += t1 - t0
+        t["normalize_s"] += t2 - t1
+        t["parquet_s"] += t3 - t2
+        print(f"  {path.name}: {len(records):,} records", flush=True)
+        del records
+    return {"records": start, **t, "by_file": True}
+
+
+def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float | None = None,
+              driver_memory: str = "8g") -> dict:
+    """Link the Parquet records with one engine (in this process); save weights and labels.
+
+    With ``limit_mib``, a process tree growing past it is stopped (this
+    process group killed) after printing what it had reached: the engine does
+    not fit in that memory.
+    """
     from linker import load_config
-    from linker.link import link_records
+    from linker.link import link_records, linkage_columns
 
     settings = load_config(prep["config"]).linkage
-    with PeakMemory() as mem:
+    last = {"stage": "starting", "t0": time.perf_counter()}
+
+    def progress(msg: str) -> None:
+        last["stage"] = msg
+
+    def too_big(peak: float) -> None:
+        print(json.dumps({"engine": engine, "exceeded_mib": peak, "limit_mib": limit_mib, "stage": last["stage"],
+                          "after_s": time.perf_counter() - last["t0"]}), flush=True)
+        os.killpg(os.getpgid(0), signal.SIGKILL)
+
+    with PeakMemory(limit_mib=limit_mib, on_limit=too_big) as mem:
         t0 = time.perf_counter()
         if engine == "local":
             from linker.spark import read_records_pandas
 
-            records = read_records_pandas(prep["parquet"])
+            # the columns the linkage reads (as a user at scale would load them; Spark selects them too)
+            records = read_records_pandas(prep["parquet"], columns=linkage_columns(settings))
             t_read = time.perf_counter() - t0
-            result = link_records(records, settings)
+            last["stage"] = "records read"
+            result = link_records(records, settings, progress)
             t_start = 0.0
         else:
             from linker.spark import link_records_spark, read_records, spark_session
 
-            spark = spark_session(master, {"spark.sql.shuffle.partitions": "8", "spark.driver.memory": "8g"})
+            partitions = max(8, int(prep["records"]) // 250_000)       # about 250 k records' pairs per task
+            spark = spark_session(master, {"spark.sql.shuffle.partitions": str(partitions),
+                                           "spark.driver.memory": driver_memory})
             t_start = time.perf_counter() - t0
             t1 = time.perf_counter()
             records = read_records(spark, prep["parquet"])
             t_read = time.perf_counter() - t1
-            result = link_records_spark(spark, records, settings)
+            last["stage"] = "records read"
+            result = link_records_spark(spark, records, settings, progress)
         total = time.perf_counter() - t0
         if engine == "spark":
             spark.stop()
@@ -150,35 +211,52 @@ def link_once(engine: str, prep: dict, out: Path, master: str) -> dict:
 WORKDIR = Path(tempfile.gettempdir()) / "linker-bench-spark"
 
 
-def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "local[2]") -> dict:
+def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "local[2]",
+        engines: Sequence[str] = ("local", "spark"), limit_mib: float | None = None,
+        driver_memory: str = "8g") -> dict:
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     prep = prepare(n_records, workdir)
     print(f"{prep['records']:,} normalized records (ingest {prep['ingest_s']:.1f} s, normalize "
           f"{prep['normalize_s']:.1f} s, Parquet {prep['parquet_s']:.1f} s; prepared in "
-          f"{time.perf_counter() - t0:.1f} s)", flush=True)
+          f"{time.perf_counter() - t0:.1f} s{', a file at a time' if prep.get('by_file') else ''})", flush=True)
     out = Path(prep["parquet"]).parent
     figures = {}
-    for engine in ("local", "spark"):
-        cmd = [sys.executable, __file__, "--engine", engine, "--prepared", json.dumps(prep), "--master", master]
-        done = subprocess.run(cmd, capture_output=True, text=True)
+    for engine in engines:
+        cmd = [sys.executable, __file__, "--engine", engine, "--prepared", json.dumps(prep), "--master", master,
+               "--driver-memory", driver_memory]
+        if limit_mib:
+            cmd += ["--limit-mib", str(limit_mib)]
+        # own process group: a run past the memory limit kills its whole tree (JVM and workers too)
+        done = subprocess.run(cmd, capture_output=True, text=True, start_new_session=True)
+        lines = done.stdout.strip().splitlines()
+        last = json.loads(lines[-1]) if lines and lines[-1].startswith("{") else {}
+        if "exceeded_mib" in last:
+            figures[engine] = last
+            print(f"{engine:>5}: did not fit: {last['exceeded_mib']:,.0f} MiB > limit {last['limit_mib']:,.0f} MiB "
+                  f"after {last['after_s']:.0f} s, at stage: {last['stage']}", flush=True)
+            continue
         if done.returncode != 0:
             raise RuntimeError(f"{engine} run failed:\n{done.stderr[-3000:]}")
-        figures[engine] = json.loads(done.stdout.strip().splitlines()[-1])
+        figures[engine] = last
         f = figures[engine]
         print(f"{engine:>5}: {f['total_s']:.1f} s in all (session {f['session_s']:.1f} s, read {f['read_s']:.1f} s; "
               f"stages {f['timings']}); {f['pairs']:,} candidate pairs, {f['entities']:,} entities; "
               f"peak memory {f['peak_mib']:,.0f} MiB", flush=True)
-    a, b = np.load(out / "local.npz"), np.load(out / "spark.npz")
-    same_pairs = all(np.array_equal(a[k], b[k]) for k in ("left", "right", "rules"))
-    same_levels = np.array_equal(a["levels"], b["levels"])
-    diff = float(np.abs(a["weight"] - b["weight"]).max()) if same_pairs and a["weight"].size else float("nan")
-    same_labels = np.array_equal(a["labels"], b["labels"])
-    print(f"agree: pairs and rules {same_pairs}, levels {same_levels}, largest weight difference {diff:.3g}, "
-          f"entities {same_labels}")
-    return {"prepared": prep, **figures, "same_pairs": same_pairs, "same_levels": same_levels,
-            "weight_diff": diff, "same_labels": same_labels}
+    result = {"prepared": prep, **figures}
+    done_both = all(e in figures and "exceeded_mib" not in figures[e] for e in ("local", "spark"))
+    if done_both:
+        a, b = np.load(out / "local.npz"), np.load(out / "spark.npz")
+        same_pairs = all(np.array_equal(a[k], b[k]) for k in ("left", "right", "rules"))
+        same_levels = np.array_equal(a["levels"], b["levels"])
+        diff = float(np.abs(a["weight"] - b["weight"]).max()) if same_pairs and a["weight"].size else float("nan")
+        same_labels = np.array_equal(a["labels"], b["labels"])
+        print(f"agree: pairs and rules {same_pairs}, levels {same_levels}, largest weight difference {diff:.3g}, "
+              f"entities {same_labels}")
+        result.update({"same_pairs": same_pairs, "same_levels": same_levels, "weight_diff": diff,
+                       "same_labels": same_labels})
+    return result
 
 
 @pytest.mark.bench
@@ -195,15 +273,20 @@ def main(argv=None) -> int:
     ap.add_argument("--records", type=int, default=100_000)
     ap.add_argument("--workdir", default=str(WORKDIR))
     ap.add_argument("--master", default="local[2]")
+    ap.add_argument("--engines", default="local,spark", help="engines to run, comma-separated")
+    ap.add_argument("--limit-mib", type=float, default=None,
+                    help="stop an engine whose process tree grows past this resident memory")
+    ap.add_argument("--driver-memory", default="8g", help="spark.driver.memory of the Spark run")
     ap.add_argument("--engine", choices=("local", "spark"), help=argparse.SUPPRESS)
     ap.add_argument("--prepared", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.engine:                                  # one engine, in a fresh process (see run)
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
         prep = json.loads(args.prepared)
-        print(json.dumps(link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master)))
+        print(json.dumps(link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master,
+                                   args.limit_mib, args.driver_memory)))
         return 0
-    run(args.records, args.workdir, args.master)
+    run(args.records, args.workdir, args.master, tuple(args.engines.split(",")), args.limit_mib, args.driver_memory)
     return 0
 
 

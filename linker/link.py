@@ -36,10 +36,10 @@ import pandas as pd
 from .blocking import BlockRule, block, pair_completeness, reduction_ratio
 from .cluster import constrained_entities
 from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare, prepare_fields
-from .fingerprint import record_fingerprints
+from .fingerprint import FINGERPRINT_FIELDS, record_fingerprints
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
-__all__ = ["LinkageSettings", "LinkResult", "link_records", "person_fields", "person_rules",
+__all__ = ["LinkageSettings", "LinkResult", "link_records", "linkage_columns", "person_fields", "person_rules",
            "pairs_table", "entity_ids", "entities_table", "explain_pair", "DECISIONS"]
 
 DECISIONS = ("link", "review", "non-link")
@@ -110,6 +110,27 @@ def person_rules(s: LinkageSettings) -> tuple[BlockRule, ...]:
         BlockRule("given_dob", "exact", ("given_key", "birth_date"), cap=s.block_cap),
         BlockRule("name_window", "sorted_window", ("name_key",), window=s.name_window),
     )
+
+
+TRUST_COLUMNS = ("reg_no", "reg_no_status", "reg_no_shared")
+
+
+def linkage_columns(s: LinkageSettings, rules: bool = True, decisions: bool = False) -> list[str]:
+    """The record columns the linkage stage reads: the comparisons' columns (flags and statuses
+    included), the registration-number columns the clustering trusts, with ``rules`` the blocking
+    keys' columns, with ``decisions`` the fingerprint columns that attach reviewer decisions.
+
+    A caller holding wide records (an export at scale) can load only these.
+    """
+    fields = person_fields(s)
+    cols = [c for f in fields for c in f.required_columns()]
+    cols += [c for f in fields for c in (f.flag_column, f.status_column) if c]
+    if rules:
+        cols += [c for r in person_rules(s) for c in r.columns]
+    cols += list(TRUST_COLUMNS)
+    if decisions:
+        cols += list(FINGERPRINT_FIELDS)
+    return list(dict.fromkeys(cols))
 
 
 @dataclass

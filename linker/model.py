@@ -757,6 +757,8 @@ class FellegiSunter:
         """Frame of ``left``, ``right``, ``weight``, ``probability`` per pair.
 
         ``record_weights``: :meth:`record_weights` of ``records`` (computed when None).
+        With both ``levels`` and ``record_weights`` given the records are not read
+        (``records`` may be None): what a batch of pairs on a worker needs.
         """
         w = self.match_weight(records, pairs, levels, record_weights)
         return pd.DataFrame({"left": pairs["left"].to_numpy(dtype=np.int64),

@@ -19,9 +19,10 @@ blocking
 comparison and scoring
     ``mapInPandas`` over the pairs calling :func:`linker.compare.compare` and
     the fitted model's :meth:`~linker.model.FellegiSunter.score` per batch.
-    The prepared tables (:func:`linker.compare.prepare_fields`, made once on
-    the driver) and the term-frequency columns are broadcast, so the levels
-    are the local ones exactly.
+    The prepared tables (:func:`linker.compare.prepare_fields`) and the
+    per-record term-frequency weights
+    (:meth:`~linker.model.FellegiSunter.record_weights`), made once on the
+    driver, are broadcast, so levels and weights are the local ones exactly.
 fitting
     u from the same random pairs (:meth:`FellegiSunter.random_pairs`, same
     seed) compared in Spark; the comparison-pattern counts of the candidates
@@ -70,9 +71,8 @@ from .blocking import BlockRule, OversizedBlockWarning, reduction_ratio
 from .cluster import constrained_entities, relabel_by_first
 from .compare import FieldComparison, compare, prepare_fields
 from .errors import LinkerError
-from .fingerprint import FINGERPRINT_FIELDS
-from .link import (LinkageSettings, LinkResult, _unlinked, apply_reviews, person_fields, person_rules,
-                   trusted_ids)
+from .link import (LinkageSettings, LinkResult, _unlinked, apply_reviews, linkage_columns, person_fields,
+                   person_rules, trusted_ids)
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
 __all__ = ["SparkUnavailable", "require_spark", "spark_session", "link_records_spark", "link_stage", "block_spark",
@@ -81,7 +81,6 @@ __all__ = ["SparkUnavailable", "require_spark", "spark_session", "link_records_s
 
 POSITION = "pos"          # the position column of records handed to Spark (0..n-1, the local row order)
 INSTALL_HINT = "pip install linker[spark]"
-_TRUST_COLUMNS = ("reg_no", "reg_no_status", "reg_no_shared")
 
 
 class SparkUnavailable(LinkerError):
@@ -168,27 +167,40 @@ def _arrow_table(frame: pd.DataFrame):
     return pa.Table.from_pandas(frame, preserve_index=False)
 
 
-def write_records_parquet(records: pd.DataFrame, path, rows_per_file: int = 250_000) -> Path:
+def write_records_parquet(records: pd.DataFrame, path, rows_per_file: int = 250_000, start: int = 0) -> Path:
     """Write ``records`` (row order = positions) as a Parquet folder with the position column ``pos``.
 
-    Files ``part-00000.parquet``... of at most ``rows_per_file`` records, so
-    Spark reads them side by side.  Column types are kept (pyarrow); an
-    object column mixing value types is written as text.  Returns the folder.
+    Files ``part-<first position>.parquet`` of at most ``rows_per_file``
+    records, so Spark reads them side by side.  Column types are kept
+    (pyarrow); an object column mixing value types is written as text.
+
+    ``start`` > 0 adds the records to the folder as the records from
+    position ``start`` on (a large delivery written a part at a time, say a
+    file at a time); ``start`` = 0 replaces what the folder held.  Returns the folder.
     """
     require_spark()
     import pyarrow.parquet as pq
 
     if POSITION in records.columns:
         raise ValueError(f"write_records_parquet: records already have a column {POSITION!r}")
+    if int(start) < 0:
+        raise ValueError(f"write_records_parquet: start must be >= 0, got {start}")
     out = Path(path)
     out.mkdir(parents=True, exist_ok=True)
-    for old in out.glob("part-*.parquet"):
-        old.unlink()
+    if int(start) == 0:
+        for old in out.glob("part-*.parquet"):
+            old.unlink()
     rec = records.reset_index(drop=True)
-    rec.insert(0, POSITION, np.arange(len(rec), dtype=np.int64))
+    rec.insert(0, POSITION, np.arange(int(start), int(start) + len(rec), dtype=np.int64))
     step = max(int(rows_per_file), 1)
-    for k, start in enumerate(range(0, max(len(rec), 1), step)):
-        pq.write_table(_arrow_table(rec.iloc[start:start + step]), out / f"part-{k:05d}.parquet")
+    for first in range(0, max(len(rec), 1), step):
+        target = out / f"part-{int(start) + first:012d}.parquet"
+        if target.exists():
+            raise ValueError(f"write_records_parquet: {target.name} already exists in {out.name}: "
+                             "positions overlap what was written before")
+        tmp = target.with_suffix(".parquet.tmp")
+        pq.write_table(_arrow_table(rec.iloc[first:first + step]), tmp)
+        os.replace(tmp, target)
     return out
 
 
@@ -204,14 +216,21 @@ def read_records(spark, path, position: str = POSITION):
     return spark.read.parquet(path)
 
 
-def read_records_pandas(path, position: str = POSITION) -> pd.DataFrame:
-    """The records of a Parquet folder as the local engine takes them: ordered by position, without it."""
+def read_records_pandas(path, position: str = POSITION, columns: Sequence[str] | None = None) -> pd.DataFrame:
+    """The records of a Parquet folder as the local engine takes them: ordered by position, without it
+    (``columns``: only these, e.g. :func:`linker.link.linkage_columns`)."""
     require_spark()
     import pyarrow.parquet as pq
 
     p = Path(path)
     files = sorted(p.glob("*.parquet")) if p.is_dir() else [p]
-    frame = pd.concat([pq.read_table(f).to_pandas() for f in files], ignore_index=True)
+    def columns_of(f):          # the asked-for columns this file has (an absent one is simply not read)
+        if columns is None:
+            return None
+        have = set(pq.read_schema(f).names)
+        return [c for c in dict.fromkeys([position, *columns]) if c in have]
+
+    frame = pd.concat([pq.read_table(f, columns=columns_of(f)).to_pandas() for f in files], ignore_index=True)
     frame = frame.sort_values(position, kind="stable").reset_index(drop=True)
     return frame.drop(columns=[position])
 
@@ -721,18 +740,13 @@ def fit_spark(spark, model: FellegiSunter, n_records: int, levels, pairs, bc, tf
                             other_counts, model.tf_value_counts(tf_frame), n_distinct_candidates=n_pairs)
 
 
-def _score_partition(bc_model, bc_tf, fields, link_at: float, review_at: float, batches):
-    model, tf = bc_model.value, bc_tf.value
+def _score_partition(bc_model, bc_weights, fields, link_at: float, review_at: float, batches):
+    # the model reads of the records only their term-frequency weights, made once on the driver
+    model, record_weights = bc_model.value, bc_weights.value
     names = _level_names(fields)
     for b in batches:
-        left = b["left"].to_numpy(dtype=np.int64)
-        right = b["right"].to_numpy(dtype=np.int64)
         levels = b[names].to_numpy(dtype=np.int8)
-        # the model reads only the term-frequency columns of the pair's records: hand it those rows
-        used = np.unique(np.concatenate([left, right]))
-        sub = tf.iloc[used].reset_index(drop=True)
-        local = pd.DataFrame({"left": np.searchsorted(used, left), "right": np.searchsorted(used, right)})
-        s = model.score(sub, local, levels)
+        s = model.score(None, b[["left", "right"]], levels, record_weights=record_weights)
         p = s["probability"].to_numpy()
         out = b.copy()
         out["weight"] = s["weight"].to_numpy()
@@ -741,13 +755,13 @@ def _score_partition(bc_model, bc_tf, fields, link_at: float, review_at: float, 
         yield out
 
 
-def _score_spark(levels, bc_model, bc_tf, fields, settings: LinkageSettings):
+def _score_spark(levels, bc_model, bc_weights, fields, settings: LinkageSettings):
     from pyspark.sql.types import DoubleType, StringType, StructField, StructType
 
     schema = StructType(list(levels.schema.fields) + [StructField("weight", DoubleType(), False),
                                                       StructField("probability", DoubleType(), False),
                                                       StructField("decision", StringType(), False)])
-    return levels.mapInPandas(partial(_score_partition, bc_model, bc_tf, tuple(fields), float(settings.link_at),
+    return levels.mapInPandas(partial(_score_partition, bc_model, bc_weights, tuple(fields), float(settings.link_at),
                                       float(settings.review_at)), schema)
 
 
@@ -873,9 +887,7 @@ def link_records_spark(spark, records, settings: LinkageSettings = LinkageSettin
         pairs_sdf, report, capped = _block(rec, list(rules), keep)
         n_pairs = int(report["pairs"].iloc[-1])
         t["block_s"] = time.perf_counter() - t0
-        need = [c for f in fields for c in f.required_columns()]
-        need += [c for f in fields for c in (f.flag_column, f.status_column) if c]
-        need += list(_TRUST_COLUMNS) + (list(FINGERPRINT_FIELDS) if decisions is not None else [])
+        need = linkage_columns(settings, rules=False, decisions=decisions is not None)
         if n < 3 or n_pairs == 0:
             pairs = _collect_sorted(pairs_sdf, ["left", "right", "rules"])
             return _unlinked(rec.driver_frame(need), pairs, fields, rules, report, capped, settings)
@@ -899,9 +911,9 @@ def link_records_spark(spark, records, settings: LinkageSettings = LinkageSettin
         fit_spark(spark, model, n, levels, pairs_sdf, bc, tf_frame, n_pairs, cand=cand)
         t["fit_s"] = time.perf_counter() - t0
         t0 = time.perf_counter()
-        bc_model, bc_tf = sc.broadcast(model), sc.broadcast(tf_frame)
-        broadcasts += [bc_model, bc_tf]
-        scored_sdf = _score_spark(levels, bc_model, bc_tf, fields, settings).persist(StorageLevel.MEMORY_AND_DISK)
+        bc_model, bc_weights = sc.broadcast(model), sc.broadcast(model.record_weights(tf_frame))
+        broadcasts += [bc_model, bc_weights]
+        scored_sdf = _score_spark(levels, bc_model, bc_weights, fields, settings).persist(StorageLevel.MEMORY_AND_DISK)
         keep.append(scored_sdf)
         names = _level_names(fields)
         s = _collect_sorted(scored_sdf, ["left", "right", "rules", *names, "weight", "probability", "decision"])

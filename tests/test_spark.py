@@ -262,6 +262,29 @@ def test_parquet_round_trip_of_the_demo_records(spark, demo, tmp_path):
 
 
 @needs_spark
+def test_parquet_written_a_part_at_a_time_reads_back_whole(demo, tmp_path):
+    """``start=`` appends the next records at their positions; reading only the linkage columns keeps order."""
+    from linker.link import linkage_columns
+    from linker.spark import read_records_pandas, write_records_parquet
+
+    records, cfg = demo
+    cut = 1234
+    path = tmp_path / "parts"
+    write_records_parquet(records.iloc[:cut], path, rows_per_file=1000)
+    write_records_parquet(records.iloc[cut:], path, rows_per_file=1000, start=cut)
+    pd.testing.assert_frame_equal(read_records_pandas(path), records, check_dtype=False)
+    with pytest.raises(ValueError, match="overlap"):
+        write_records_parquet(records.iloc[cut:], path, rows_per_file=1000, start=cut)
+    cols = linkage_columns(cfg.linkage)
+    assert {"reg_no", "given_name", "family_soundex", "birth_year", "name_key", "reg_no_status"} <= set(cols)
+    narrow = read_records_pandas(path, columns=cols + ["no_such_column"])
+    assert list(narrow.columns) == [c for c in cols if c in records.columns]
+    pd.testing.assert_frame_equal(narrow, records[list(narrow.columns)], check_dtype=False)
+    write_records_parquet(records.iloc[:10], path)                 # start 0 replaces the folder
+    assert len(read_records_pandas(path)) == 10
+
+
+@needs_spark
 def test_cli_run_with_the_spark_engine_writes_the_local_outputs(spark, tmp_path, monkeypatch):
     """`linker run --engine spark` (on the running session) links on Spark and writes what the local engine writes."""
     import linker.spark as spark_module
