@@ -125,7 +125,7 @@ def _prepare_by_file(cfg, parquet: Path) -> dict:
     """Ingest, normalize and write the delivery one file at a time (memory of one file, not of all):
     the records and their order are those of the whole-delivery path (normalization is per record)."""
     from linker.ingest import ingest_file
-    from linker.io import list_delivery, read_file
+    from linker.io import ReadLimits, list_delivery, read_file
     from linker.records import normalize_records
     from linker.spark import write_records_parquet
 
@@ -133,7 +133,8 @@ def _prepare_by_file(cfg, parquet: Path) -> dict:
     start = 0
     for path in list_delivery(cfg.folder, cfg.patterns, cfg.exclude):
         t0 = time.perf_counter()
-        data = read_file(path, cfg.folder)
+        # an export of millions of rows: CSV files past the spreadsheet row limit are expected here
+        data = read_file(path, cfg.folder, ReadLimits(max_sheet_rows=50_000_000))
         raws = [res.records for res in ingest_file(cfg, data)]
         del data
         raw = pd.concat(raws, ignore_index=True)
@@ -205,7 +206,11 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
              labels=result.labels, levels=result.levels)
     return {"engine": engine, "total_s": total, "session_s": t_start, "read_s": t_read,
             "timings": result.info["timings"], "pairs": result.info["candidate_pairs"],
-            "entities": result.info["entities"], "peak_mib": mem.peak}
+            "entities": result.info["entities"], "peak_mib": mem.peak,
+            "largest_entity": int(np.bincount(result.labels).max()) if result.labels.size else 0,
+            "blocking": [[str(r), int(p), int(q)]
+                         for r, p, q in result.blocking[["rule", "pairs", "new_pairs"]].itertuples(index=False)],
+            "capped_blocks": int(len(result.capped))}
 
 
 WORKDIR = Path(tempfile.gettempdir()) / "linker-bench-spark"

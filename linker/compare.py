@@ -345,11 +345,17 @@ def _flag(records: pd.DataFrame, col: str | None) -> np.ndarray:
 
 def _row_codes(parts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Code per distinct row of a small-integer matrix (codes in first-seen order) and each code's first row."""
-    key = parts[:, 0] + 1
+    key = parts[:, 0].astype(np.int64) + 1
+    span = int(key.max()) + 1 if key.size else 1
     for c in range(1, parts.shape[1]):
-        col = parts[:, c] + 1
-        key = pd.factorize(key * (int(col.max()) + 1 if col.size else 1) + col)[0].astype(np.int64)
-    codes = pd.factorize(key)[0].astype(np.int64) if parts.shape[1] == 1 else key
+        col = parts[:, c].astype(np.int64) + 1
+        width = int(col.max()) + 1 if col.size else 1
+        if span * width >= 2 ** 62:                 # renumber the rows so far before the key overflows
+            key = pd.factorize(key)[0].astype(np.int64)
+            span = int(key.max()) + 1 if key.size else 1
+        key = key * width + col
+        span *= width
+    codes = pd.factorize(key)[0].astype(np.int64)
     first = np.full(int(codes.max()) + 1 if codes.size else 0, -1, dtype=np.int64)
     first[codes[::-1]] = np.arange(codes.size - 1, -1, -1)
     return codes, first
@@ -391,10 +397,13 @@ def _prepare(records: pd.DataFrame, f: FieldComparison, shared: dict | None = No
         kcode, kvocab = _codes(records, f.key_column, shared)
         ktok = _shared(shared, ("tokens", f.key_column), lambda: _token_codes(kvocab))
         pcode, _ = _codes(records, f.phonetic_column, shared)
-        parts = np.stack([vcode, ocode, kcode, pcode], axis=1)
-        tuples, first = _row_codes(parts)
+        # one code per distinct combination of the name columns, shared by the name fields over the same
+        # columns (given and family name: the same record tuples, each field reading its own parts)
+        cols = tuple(sorted({c for c in (f.columns[0], f.swap_column, f.key_column, f.phonetic_column) if c}))
+        tuples, first = _shared(shared, ("rows", cols), lambda: _row_codes(
+            np.stack([_codes(records, c, shared)[0] for c in cols], axis=1)))
         codes = np.where(vcode < 0, -1, tuples)
-        at = parts[first]
+        at = np.stack([vcode, ocode, kcode, pcode], axis=1)[first]
         return _Table(codes, {"vcode": at[:, 0], "ocode": at[:, 1], "kcode": at[:, 2], "pcode": at[:, 3],
                               "vocab": vocab, "kvocab": kvocab, "ktokens": ktok[0], "kntok": ktok[1]})
     if kind == "date":
@@ -467,22 +476,42 @@ def _score_exact(t: _Table, f, a, b):
     return _first_true([a == b], a.size, 2)
 
 
+_MARK = "\x01"         # stands between values in the joined text :func:`_words` splits
+
+
+def _words(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """All whitespace-separated words of the values in order, and the value each belongs to.
+
+    One ``str.split`` over the values joined by a mark word (not per value),
+    unless a value is not a str or holds the mark itself.
+    """
+    joined = f" {_MARK} ".join(values) if pd.api.types.infer_dtype(values, skipna=False) == "string" else None
+    if joined is None or joined.count(_MARK) != len(values) - 1:
+        split = [v.split() if isinstance(v, str) else [] for v in values]
+        counts = np.fromiter(map(len, split), dtype=np.int64, count=len(split))
+        words = np.fromiter(chain.from_iterable(split), dtype=object, count=int(counts.sum()))
+        return words, np.repeat(np.arange(len(split)), counts)
+    words = np.array(joined.split(), dtype=object)
+    mark = words == _MARK
+    return words[~mark], np.cumsum(mark)[~mark]
+
+
 def _token_codes(values: np.ndarray, max_tokens: int = 6) -> tuple[np.ndarray, np.ndarray]:
     """Per value: a (n, T) matrix of token codes (-1 = no token) and the token count
     (tokens are the distinct whitespace-separated words, in order; one flat factorization of all tokens)."""
-    split = [v.split() if isinstance(v, str) else [] for v in values]
-    counts = np.fromiter(map(len, split), dtype=np.int64, count=len(split))
-    mat = np.full((len(split), max_tokens), -1, dtype=np.int64)
-    total = int(counts.sum())
-    if total == 0:
-        return mat, counts
-    codes = pd.factorize(np.fromiter(chain.from_iterable(split), dtype=object, count=total))[0].astype(np.int64)
-    owner = np.repeat(np.arange(len(split)), counts)
-    if total > len(split):          # drop a word repeated within one value (keep its first place)
-        first = np.zeros(total, dtype=bool)
-        first[np.unique(owner * (int(codes.max()) + 1) + codes, return_index=True)[1]] = True
-        owner, codes = owner[first], codes[first]
-        counts = np.bincount(owner, minlength=len(split))
+    n = len(values)
+    mat = np.full((n, max_tokens), -1, dtype=np.int64)
+    if n == 0:
+        return mat, np.zeros(0, dtype=np.int64)
+    words, owner = _words(np.asarray(values, dtype=object))
+    if words.size == 0:
+        return mat, np.zeros(n, dtype=np.int64)
+    codes = pd.factorize(words)[0].astype(np.int64)
+    # drop a word repeated within one value (keep its first place)
+    first = np.zeros(words.size, dtype=bool)
+    first[np.unique(owner * (int(codes.max()) + 1) + codes, return_index=True)[1]] = True
+    owner, codes = owner[first], codes[first]
+    counts = np.bincount(owner, minlength=n).astype(np.int64)
     pos = np.arange(owner.size) - np.repeat(np.cumsum(counts) - counts, counts)
     keep = pos < max_tokens
     mat[owner[keep], pos[keep]] = codes[keep]
