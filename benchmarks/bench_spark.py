@@ -153,6 +153,29 @@ def _prepare_by_file(cfg, parquet: Path) -> dict:
     return {"records": start, **t, "by_file": True}
 
 
+def stage_figures(spark) -> dict:
+    """Shuffle written and read over the application's completed stages, and the largest stages
+    (from Spark's status REST interface on the driver's UI port; empty when it cannot be read)."""
+    import urllib.request
+
+    try:
+        base = spark.sparkContext.uiWebUrl.rstrip("/")
+        app = spark.sparkContext.applicationId
+        with urllib.request.urlopen(f"{base}/api/v1/applications/{app}/stages?status=complete", timeout=30) as r:
+            stages = json.loads(r.read().decode("utf-8"))
+    except Exception as err:                 # figures are a bonus: the run stands without them
+        return {"error": f"{type(err).__name__}: {err}"}
+    rows = [{"name": st.get("name", "")[:80], "tasks": int(st.get("numTasks", 0)),
+             "shuffle_write_mib": st.get("shuffleWriteBytes", 0) / 2**20,
+             "shuffle_read_mib": st.get("shuffleReadBytes", 0) / 2**20,
+             "input_mib": st.get("inputBytes", 0) / 2**20,
+             "spill_disk_mib": st.get("diskBytesSpilled", 0) / 2**20} for st in stages]
+    rows.sort(key=lambda r: -r["shuffle_write_mib"])
+    return {"stages": len(rows), "shuffle_write_mib": sum(r["shuffle_write_mib"] for r in rows),
+            "shuffle_read_mib": sum(r["shuffle_read_mib"] for r in rows),
+            "spill_disk_mib": sum(r["spill_disk_mib"] for r in rows), "largest": rows[:12]}
+
+
 def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float | None = None,
               driver_memory: str = "8g") -> dict:
     """Link the Parquet records with one engine (in this process); save weights and labels.
@@ -190,8 +213,9 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
             from linker.spark import link_records_spark, read_records, spark_session
 
             partitions = max(8, int(prep["records"]) // 250_000)       # about 250 k records' pairs per task
+            # the UI (on loopback: SPARK_LOCAL_IP) only to read the stages' shuffle figures at the end
             spark = spark_session(master, {"spark.sql.shuffle.partitions": str(partitions),
-                                           "spark.driver.memory": driver_memory})
+                                           "spark.driver.memory": driver_memory, "spark.ui.enabled": "true"})
             t_start = time.perf_counter() - t0
             t1 = time.perf_counter()
             records = read_records(spark, prep["parquet"])
@@ -199,7 +223,9 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
             last["stage"] = "records read"
             result = link_records_spark(spark, records, settings, progress)
         total = time.perf_counter() - t0
+        shuffle = {}
         if engine == "spark":
+            shuffle = stage_figures(spark)
             spark.stop()
     np.savez(out / f"{engine}.npz", left=result.scores["left"].to_numpy(), right=result.scores["right"].to_numpy(),
              rules=result.scores["rules"].to_numpy(), weight=result.scores["weight"].to_numpy(),
@@ -210,7 +236,7 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
             "largest_entity": int(np.bincount(result.labels).max()) if result.labels.size else 0,
             "blocking": [[str(r), int(p), int(q)]
                          for r, p, q in result.blocking[["rule", "pairs", "new_pairs"]].itertuples(index=False)],
-            "capped_blocks": int(len(result.capped))}
+            "capped_blocks": int(len(result.capped)), "shuffle": shuffle}
 
 
 WORKDIR = Path(tempfile.gettempdir()) / "linker-bench-spark"
@@ -249,7 +275,13 @@ def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "
         print(f"{engine:>5}: {f['total_s']:.1f} s in all (session {f['session_s']:.1f} s, read {f['read_s']:.1f} s; "
               f"stages {f['timings']}); {f['pairs']:,} candidate pairs, {f['entities']:,} entities; "
               f"peak memory {f['peak_mib']:,.0f} MiB", flush=True)
+        print(f"       blocking {f['blocking']}; largest entity {f['largest_entity']}", flush=True)
+        sh = f.get("shuffle") or {}
+        if "shuffle_write_mib" in sh:
+            print(f"       shuffle written {sh['shuffle_write_mib']:,.0f} MiB, read {sh['shuffle_read_mib']:,.0f} MiB, "
+                  f"spilled to disk {sh['spill_disk_mib']:,.0f} MiB over {sh['stages']} stages", flush=True)
     result = {"prepared": prep, **figures}
+    (out / "figures.json").write_text(json.dumps(figures, indent=1))
     done_both = all(e in figures and "exceeded_mib" not in figures[e] for e in ("local", "spark"))
     if done_both:
         a, b = np.load(out / "local.npz"), np.load(out / "spark.npz")
@@ -288,8 +320,10 @@ def main(argv=None) -> int:
     if args.engine:                                  # one engine, in a fresh process (see run)
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
         prep = json.loads(args.prepared)
-        print(json.dumps(link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master,
-                                   args.limit_mib, args.driver_memory)))
+        figures = link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master,
+                            args.limit_mib, args.driver_memory)
+        (Path(prep["parquet"]).parent / f"{args.engine}.json").write_text(json.dumps(figures, indent=1))
+        print(json.dumps(figures))
         return 0
     run(args.records, args.workdir, args.master, tuple(args.engines.split(",")), args.limit_mib, args.driver_memory)
     return 0
