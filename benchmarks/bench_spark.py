@@ -269,7 +269,9 @@ def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "
                   f"after {last['after_s']:.0f} s, at stage: {last['stage']}", flush=True)
             continue
         if done.returncode != 0:
-            raise RuntimeError(f"{engine} run failed:\n{done.stderr[-3000:]}")
+            log = out / f"{engine}.stderr.txt"
+            log.write_text(done.stderr)
+            raise RuntimeError(f"{engine} run failed (whole error output in {log}):\n{done.stderr[-3000:]}")
         figures[engine] = last
         f = figures[engine]
         print(f"{engine:>5}: {f['total_s']:.1f} s in all (session {f['session_s']:.1f} s, read {f['read_s']:.1f} s; "

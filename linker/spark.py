@@ -111,7 +111,7 @@ def _quiet(message: str) -> None:
 # ---------------------------------------------------------------------------
 
 def spark_session(master: str = "local[2]", conf: dict | None = None, app_name: str = "linker"):
-    """A Spark session for the engine: UI off, few shuffle partitions, Arrow on.
+    """A Spark session for the engine: UI off, few shuffle partitions, Arrow on, results to the driver unbounded.
 
     ``conf`` entries override the defaults.  With a ``local`` master the
     driver binds to 127.0.0.1 and the Python workers run this interpreter.
@@ -129,6 +129,9 @@ def spark_session(master: str = "local[2]", conf: dict | None = None, app_name: 
         "spark.sql.execution.arrow.pyspark.fallback.enabled": "false",
         "spark.sql.execution.arrow.maxRecordsPerBatch": "100000",
         "spark.driver.memory": "4g",
+        # the engine brings what grows with the records (prepared tables) and the scored pairs to the
+        # driver by design: spark.driver.memory is the bound, not Spark's 1 GiB default on results
+        "spark.driver.maxResultSize": "0",
     }
     if master.startswith("local"):
         settings.update({"spark.driver.bindAddress": "127.0.0.1", "spark.driver.host": "127.0.0.1",
