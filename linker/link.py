@@ -39,7 +39,7 @@ from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare, prepare_fi
 from .fingerprint import FINGERPRINT_FIELDS, record_fingerprints
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
-__all__ = ["LinkageSettings", "LinkResult", "link_records", "linkage_columns", "person_fields", "person_rules",
+__all__ = ["LinkageSettings", "LinkResult", "link_records", "linkage_columns", "threshold_decisions", "person_fields", "person_rules",
            "pairs_table", "entity_ids", "entities_table", "explain_pair", "DECISIONS"]
 
 DECISIONS = ("link", "review", "non-link")
@@ -113,6 +113,13 @@ def person_rules(s: LinkageSettings) -> tuple[BlockRule, ...]:
 
 
 TRUST_COLUMNS = ("reg_no", "reg_no_status", "reg_no_shared")
+
+
+def threshold_decisions(probability: np.ndarray, link_at: float, review_at: float) -> np.ndarray:
+    """The model's decision per pair: "link" at or above ``link_at``, "review" from ``review_at``,
+    else "non-link" (reviewer decisions then overrule it, see :func:`apply_reviews`)."""
+    p = np.asarray(probability, dtype=np.float64)
+    return np.where(p >= link_at, "link", np.where(p >= review_at, "review", "non-link")).astype(object)
 
 
 def linkage_columns(s: LinkageSettings, rules: bool = True, decisions: bool = False) -> list[str]:
@@ -230,8 +237,7 @@ def link_records(records: pd.DataFrame, settings: LinkageSettings = LinkageSetti
              f"after {model.n_iter_} iterations")
     p = scores["probability"].to_numpy()
     scores["rules"] = pairs["rules"].to_numpy()
-    scores["decision"] = np.where(p >= settings.link_at, "link",
-                                  np.where(p >= settings.review_at, "review", "non-link"))
+    scores["decision"] = threshold_decisions(p, settings.link_at, settings.review_at)
     dec, must, cannot = apply_reviews(scores, records, decisions)
     linked = scores["decision"].to_numpy() == "link"
     t0 = time.perf_counter()

@@ -72,7 +72,7 @@ from .cluster import constrained_entities, relabel_by_first
 from .compare import FieldComparison, compare, prepare_fields
 from .errors import LinkerError
 from .link import (LinkageSettings, LinkResult, _unlinked, apply_reviews, linkage_columns, person_fields,
-                   person_rules, trusted_ids)
+                   person_rules, threshold_decisions, trusted_ids)
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
 __all__ = ["SparkUnavailable", "require_spark", "spark_session", "link_records_spark", "link_stage", "block_spark",
@@ -754,7 +754,7 @@ def _score_partition(bc_model, bc_weights, fields, link_at: float, review_at: fl
         out = b.copy()
         out["weight"] = s["weight"].to_numpy()
         out["probability"] = p
-        out["decision"] = np.where(p >= link_at, "link", np.where(p >= review_at, "review", "non-link"))
+        out["decision"] = threshold_decisions(p, link_at, review_at)
         yield out
 
 
@@ -919,17 +919,22 @@ def link_records_spark(spark, records, settings: LinkageSettings = LinkageSettin
         scored_sdf = _score_spark(levels, bc_model, bc_weights, fields, settings).persist(StorageLevel.MEMORY_AND_DISK)
         keep.append(scored_sdf)
         names = _level_names(fields)
-        s = _collect_sorted(scored_sdf, ["left", "right", "rules", *names, "weight", "probability", "decision"])
+        # the decisions are the thresholds' on the driver too (not carried over as text: memory at scale)
+        s = _collect_sorted(scored_sdf, ["left", "right", "rules", *names, "weight", "probability"])
         t["score_s"] = time.perf_counter() - t0
         progress(f"model: EM {'converged' if model.converged_ else 'did not converge'} "
                  f"after {model.n_iter_} iterations")
-        level_matrix = np.ascontiguousarray(s[names].to_numpy(dtype=np.int8))
-        scores = pd.DataFrame({"left": s["left"].to_numpy(dtype=np.int64),
-                               "right": s["right"].to_numpy(dtype=np.int64),
-                               "weight": s["weight"].to_numpy(dtype=np.float64),
-                               "probability": s["probability"].to_numpy(dtype=np.float64)})
-        scores["rules"] = s["rules"].to_numpy(dtype=np.int64)
-        scores["decision"] = s["decision"].to_numpy(dtype=object)
+        level_matrix = np.empty((len(s), len(names)), dtype=np.int8)
+        for j, name in enumerate(names):
+            level_matrix[:, j] = s.pop(name).to_numpy(dtype=np.int8)
+        scores = pd.DataFrame({"left": s.pop("left").to_numpy(dtype=np.int64),
+                               "right": s.pop("right").to_numpy(dtype=np.int64),
+                               "weight": s.pop("weight").to_numpy(dtype=np.float64),
+                               "probability": s.pop("probability").to_numpy(dtype=np.float64)})
+        scores["rules"] = s.pop("rules").to_numpy(dtype=np.int64)
+        del s
+        scores["decision"] = threshold_decisions(scores["probability"].to_numpy(), settings.link_at,
+                                                 settings.review_at)
         dec, must, cannot = apply_reviews(scores, frame, decisions)
         linked = scores["decision"].to_numpy() == "link"
         t0 = time.perf_counter()
@@ -998,4 +1003,7 @@ def _collect_sorted(sdf, columns: list[str]) -> pd.DataFrame:
     """A Spark frame on the driver, rows ordered by (left, right) like the local engine's pairs."""
     frame = sdf.select(*columns).toPandas()
     order = np.lexsort((frame["right"].to_numpy(dtype=np.int64), frame["left"].to_numpy(dtype=np.int64)))
-    return frame.iloc[order].reset_index(drop=True)
+    out = {}
+    for c in columns:                    # one column at a time: the frame and its sorted copy never both whole
+        out[c] = frame.pop(c).to_numpy()[order]
+    return pd.DataFrame(out)
