@@ -177,7 +177,7 @@ def stage_figures(spark) -> dict:
 
 
 def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float | None = None,
-              driver_memory: str = "8g") -> dict:
+              driver_memory: str = "8g", conf: dict | None = None) -> dict:
     """Link the Parquet records with one engine (in this process); save weights and labels.
 
     With ``limit_mib``, a process tree growing past it is stopped (this
@@ -215,7 +215,8 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
             partitions = max(8, int(prep["records"]) // 250_000)       # about 250 k records' pairs per task
             # the UI (on loopback: SPARK_LOCAL_IP) only to read the stages' shuffle figures at the end
             spark = spark_session(master, {"spark.sql.shuffle.partitions": str(partitions),
-                                           "spark.driver.memory": driver_memory, "spark.ui.enabled": "true"})
+                                           "spark.driver.memory": driver_memory, "spark.ui.enabled": "true",
+                                           **(conf or {})})
             t_start = time.perf_counter() - t0
             t1 = time.perf_counter()
             records = read_records(spark, prep["parquet"])
@@ -244,7 +245,7 @@ WORKDIR = Path(tempfile.gettempdir()) / "linker-bench-spark"
 
 def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "local[2]",
         engines: Sequence[str] = ("local", "spark"), limit_mib: float | None = None,
-        driver_memory: str = "8g") -> dict:
+        driver_memory: str = "8g", conf: dict | None = None) -> dict:
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
@@ -259,6 +260,8 @@ def run(n_records: int = 100_000, workdir: str | Path = WORKDIR, master: str = "
                "--driver-memory", driver_memory]
         if limit_mib:
             cmd += ["--limit-mib", str(limit_mib)]
+        for k, v in (conf or {}).items():
+            cmd += ["--conf", f"{k}={v}"]
         # own process group: a run past the memory limit kills its whole tree (JVM and workers too)
         done = subprocess.run(cmd, capture_output=True, text=True, start_new_session=True)
         lines = done.stdout.strip().splitlines()
@@ -316,6 +319,8 @@ def main(argv=None) -> int:
     ap.add_argument("--limit-mib", type=float, default=None,
                     help="stop an engine whose process tree grows past this resident memory")
     ap.add_argument("--driver-memory", default="8g", help="spark.driver.memory of the Spark run")
+    ap.add_argument("--conf", action="append", default=[], metavar="KEY=VALUE",
+                    help="another Spark setting of the Spark run (repeatable)")
     ap.add_argument("--engine", choices=("local", "spark"), help=argparse.SUPPRESS)
     ap.add_argument("--prepared", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -323,11 +328,12 @@ def main(argv=None) -> int:
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
         prep = json.loads(args.prepared)
         figures = link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master,
-                            args.limit_mib, args.driver_memory)
+                            args.limit_mib, args.driver_memory, dict(kv.split("=", 1) for kv in args.conf))
         (Path(prep["parquet"]).parent / f"{args.engine}.json").write_text(json.dumps(figures, indent=1))
         print(json.dumps(figures))
         return 0
-    run(args.records, args.workdir, args.master, tuple(args.engines.split(",")), args.limit_mib, args.driver_memory)
+    run(args.records, args.workdir, args.master, tuple(args.engines.split(",")), args.limit_mib, args.driver_memory,
+        dict(kv.split("=", 1) for kv in args.conf))
     return 0
 
 

@@ -182,7 +182,9 @@ def curve(sizes: list[int], workdir: Path) -> list[dict]:
     for n in sizes:
         proc = subprocess.run([sys.executable, __file__, "--records", str(n), "--workdir", str(workdir), "--json"],
                               capture_output=True, text=True, check=True)
-        results.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+        lines = proc.stdout.strip().splitlines()
+        results.append(json.loads(lines[-1]))
+        print("\n".join(line for line in lines[:-1] if line.startswith(("records", "  "))), flush=True)
         r = results[-1]
         print(f"{r['records']:>10,} records: {r['total_s']:7.1f} s, {1e6 * r['total_s'] / r['records']:6.1f} µs/record, "
               f"peak {r['peak_mib']:,.0f} MiB, pairwise F1 {r['pairwise_f1']:.4f}, largest entity "
