@@ -39,8 +39,8 @@ from .compare import DEFAULT_PERSON_FIELDS, FieldComparison, compare, prepare_fi
 from .fingerprint import FINGERPRINT_FIELDS, record_fingerprints
 from .model import DEFAULT_PERSON_GUARDS, FellegiSunter
 
-__all__ = ["LinkageSettings", "LinkResult", "link_records", "linkage_columns", "threshold_decisions", "person_fields", "person_rules",
-           "pairs_table", "entity_ids", "entities_table", "explain_pair", "DECISIONS"]
+__all__ = ["LinkageSettings", "LinkResult", "link_records", "linkage_columns", "threshold_decisions",
+           "person_fields", "person_rules", "pairs_table", "entity_ids", "entities_table", "explain_pair", "DECISIONS"]
 
 DECISIONS = ("link", "review", "non-link")
 ENTITY_FIELDS = ("reg_no", "given_name", "family_name", "birth_date", "sex")

@@ -679,11 +679,10 @@ class FellegiSunter:
             exact = f.level("exact")
             # once per distinct value: the stripped texts looked up in the fitted frequencies
             codes, uniques = column_codes(records, f.columns[0])
-            known = pd.Index(list(table.keys()), dtype=object)
-            where = known.get_indexer(uniques)
-            freq = np.fromiter(table.values(), dtype=np.float64, count=len(table))
-            per_value = np.where(where >= 0, freq[np.maximum(where, 0)], np.nan) if where.size else where.astype(float)
-            w = _log2(self.m_[f.name][exact]) - _log2(np.append(per_value, np.nan)[codes])
+            where = pd.Index(list(table.keys()), dtype=object).get_indexer(uniques)   # -1: not seen in fitting
+            freq = np.append(np.fromiter(table.values(), dtype=np.float64, count=len(table)), np.nan)
+            per_value = np.append(freq[where], np.nan)                                # last: missing value
+            w = _log2(self.m_[f.name][exact]) - _log2(per_value[codes])
             if self.clamp_agreement:
                 w = np.where(w < 0, 0.0, w)
             out[f.name] = w
