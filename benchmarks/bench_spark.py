@@ -212,7 +212,7 @@ def link_once(engine: str, prep: dict, out: Path, master: str, limit_mib: float 
         else:
             from linker.spark import link_records_spark, read_records, spark_session
 
-            partitions = max(8, int(prep["records"]) // 250_000)       # about 250 k records' pairs per task
+            partitions = max(8, int(prep["records"]) // 250_000)       # one per 250,000 records, at least 8
             # the UI (on loopback: SPARK_LOCAL_IP) only to read the stages' shuffle figures at the end
             spark = spark_session(master, {"spark.sql.shuffle.partitions": str(partitions),
                                            "spark.driver.memory": driver_memory, "spark.ui.enabled": "true",
@@ -324,16 +324,22 @@ def main(argv=None) -> int:
     ap.add_argument("--engine", choices=("local", "spark"), help=argparse.SUPPRESS)
     ap.add_argument("--prepared", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    bad = [kv for kv in args.conf if "=" not in kv]
+    if bad:
+        ap.error(f"--conf takes KEY=VALUE, got {bad[0]!r}")
+    conf = dict(kv.split("=", 1) for kv in args.conf)
     if args.engine:                                  # one engine, in a fresh process (see run)
         os.environ.setdefault("SPARK_LOCAL_IP", "127.0.0.1")
+        if os.getpgid(0) != os.getpid():             # its own process group: the memory limit kills only this tree
+            os.setpgid(0, 0)
         prep = json.loads(args.prepared)
         figures = link_once(args.engine, prep, Path(prep["parquet"]).parent, args.master,
-                            args.limit_mib, args.driver_memory, dict(kv.split("=", 1) for kv in args.conf))
+                            args.limit_mib, args.driver_memory, conf)
         (Path(prep["parquet"]).parent / f"{args.engine}.json").write_text(json.dumps(figures, indent=1))
         print(json.dumps(figures))
         return 0
     run(args.records, args.workdir, args.master, tuple(args.engines.split(",")), args.limit_mib, args.driver_memory,
-        dict(kv.split("=", 1) for kv in args.conf))
+        conf)
     return 0
 
 

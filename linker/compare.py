@@ -549,7 +549,8 @@ def _key_subset(at: dict, ka: np.ndarray, kb: np.ndarray) -> np.ndarray:
 
 def _holds_tokens(tok: np.ndarray, ntok: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
     """Per pair: key ``y`` holds every token of key ``x``, and ``x`` has at least two
-    (tested only where ``x`` has no more tokens than ``y``, on as many token columns as needed)."""
+    (tested only where ``x`` has no more tokens than ``y`` -- tokens are distinct within a key, see
+    :func:`_token_codes` -- and on as many token columns as the keys use)."""
     out = np.zeros(x.size, dtype=bool)
     nx, ny = ntok[x], ntok[y]
     idx = np.flatnonzero((nx >= 2) & (nx <= ny))

@@ -196,3 +196,19 @@ def test_missing_column_is_named():
     """compare names the columns the records lack."""
     with pytest.raises(ValueError, match="birth_date"):
         compare(pd.DataFrame({"reg_no": ["1"]}), ([0], [0]), [FieldComparison("d", "date", ("birth_date",))])
+
+
+def test_token_codes_keep_distinct_words_in_order_whatever_the_values_hold():
+    """Words split at once over all values or one value at a time (a value holding the join mark,
+    or not a str) give the same tokens: distinct words in order, counted once."""
+    from linker.compare import _token_codes
+
+    plain = np.array(["ANA MARIA", "", "MARIA ANA ANA", "  LUZ  ", "SOL"], dtype=object)
+    mat, counts = _token_codes(plain)
+    assert counts.tolist() == [2, 0, 2, 1, 1]
+    assert mat[0, :2].tolist() == mat[2, :2][::-1].tolist()        # same two words, other order
+    assert (mat[1] == -1).all() and (mat[0, 2:] == -1).all()
+    odd = np.append(plain, np.array(["X \x01 Y", 7], dtype=object))  # the mark inside a value; a number
+    mat2, counts2 = _token_codes(odd)
+    assert counts2.tolist() == [2, 0, 2, 1, 1, 3, 0]
+    np.testing.assert_array_equal(mat2[:5], mat)
